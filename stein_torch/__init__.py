@@ -1,0 +1,29 @@
+"""stein_torch: posterior samples from any torch log density by Stein variational gradient descent.
+
+>>> import stein_torch as st
+>>> target = st.Target(lambda x: -0.5 * (x ** 2).sum(-1), dim=2)
+>>> run = st.sample(target, particles=100, steps=200, seed=0)
+>>> run.draws["x"].shape
+torch.Size([1, 100, 2])
+"""
+
+from . import kernels, steppers
+from .result import Result
+from .sample import Sampler, sample
+from .stein import ksd, svgd_direction
+from .target import Param, Target
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "Param",
+    "Result",
+    "Sampler",
+    "Target",
+    "kernels",
+    "ksd",
+    "sample",
+    "steppers",
+    "svgd_direction",
+    "__version__",
+]

@@ -1,0 +1,118 @@
+"""What a run returns: draws on the constrained scale, the trace, and the bridge to ArviZ."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import torch
+
+from .target import Target
+
+__all__ = ["Result"]
+
+
+class Result:
+    """Draws of a sampler run, organised as (chain, draw).
+
+    For SVGD a chain is an ensemble (an independent particle set) and a draw is a particle; for
+    Langevin samplers they are the usual chains and iterations.
+
+    Attributes
+    ----------
+    target : Target
+    particles : Tensor of shape (chains, draws, dim)
+        Final positions on the unconstrained scale.
+    lp : Tensor of shape (chains, draws)
+        Log density (unconstrained scale, log-Jacobian included) of each particle.
+    trace : dict of str to ndarray
+        Per-step figures, each of shape (steps,) or (steps, chains).
+    settings : dict
+        Method, kernel, step rule and other settings (stored as InferenceData attrs).
+    stop_reason : str
+        Why the run ended ("steps", "interrupted", ...).
+    sample_stats : dict of str to ndarray
+        Extra per-draw statistics of shape (chains, draws) for the ``sample_stats`` group.
+    """
+
+    def __init__(
+        self,
+        target: Target,
+        particles: torch.Tensor,
+        lp: torch.Tensor,
+        trace: dict[str, np.ndarray],
+        settings: dict[str, Any],
+        stop_reason: str = "steps",
+        sample_stats: dict[str, np.ndarray] | None = None,
+    ):
+        self.target = target
+        self.particles = particles
+        self.lp = lp
+        self.trace = trace
+        self.settings = settings
+        self.stop_reason = stop_reason
+        self.sample_stats = dict(sample_stats or {})
+        self._draws = None
+
+    @property
+    def draws(self) -> dict[str, torch.Tensor]:
+        """Name -> tensor of shape (chains, draws, *shape) on the constrained scale."""
+        if self._draws is None:
+            with torch.no_grad():
+                values, _ = self.target.constrain(self.particles)
+            self._draws = {k: v.detach() for k, v in values.items()}
+        return self._draws
+
+    @property
+    def method(self) -> str:
+        return str(self.settings.get("method", "svgd"))
+
+    def to_inference_data(self, **groups):
+        """Convert to :class:`arviz.InferenceData`.
+
+        Groups: ``posterior`` (one variable per parameter, dims chain, draw, *shape; for SVGD
+        chain = ensemble, draw = particle), ``sample_stats`` (``lp`` per draw and any statistics of
+        the sampler), attrs with the library name, version and settings. Extra groups (e.g.
+        ``observed_data``) may be passed as keyword arguments of :func:`arviz.from_dict`.
+
+        Notes
+        -----
+        Particles are not a Markov chain: ``ess`` computed on them is not an effective sample size
+        in the MCMC sense, and only ``r_hat`` across independent ensembles is meaningful.
+        """
+        import arviz as az
+
+        from . import __version__
+
+        posterior = {k: v.cpu().numpy() for k, v in self.draws.items()}
+        dims = {k: [f"{k}_dim_{i}" for i in range(v.dim() - 2)] for k, v in self.draws.items()}
+        stats = {"lp": self.lp.cpu().numpy(), **self.sample_stats}
+        attrs = {"inference_library": "stein_torch", "inference_library_version": __version__}
+        attrs.update({k: _attr_value(v) for k, v in self.settings.items()})
+        attrs["stop_reason"] = self.stop_reason
+        return az.from_dict(posterior=posterior, sample_stats=stats, dims=dims, attrs=attrs, **groups)
+
+    def summary(self, **kwargs):
+        """Posterior summary by :func:`arviz.summary` (a pandas DataFrame).
+
+        For SVGD results the default is ``kind="stats"`` (mean, sd, HDI) since MCMC diagnostics
+        do not apply to particles; pass ``kind="all"`` to get them anyway (r_hat across ensembles).
+        """
+        import arviz as az
+
+        if self.method == "svgd":
+            kwargs.setdefault("kind", "stats")
+        return az.summary(self.to_inference_data(), **kwargs)
+
+    def __repr__(self) -> str:
+        chains, draws = self.particles.shape[:2]
+        return f"Result(method={self.method!r}, chains={chains}, draws={draws}, stop_reason={self.stop_reason!r})"
+
+
+def _attr_value(value):
+    """NetCDF attributes must be strings or numbers."""
+    if isinstance(value, (bool, np.bool_)):
+        return int(value)
+    if isinstance(value, (int, float, str, np.integer, np.floating)):
+        return value
+    return str(value)
