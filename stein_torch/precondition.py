@@ -9,25 +9,24 @@ as s_u = s_z L, the log density changes by a constant.
 
 from __future__ import annotations
 
-import math
-import warnings
 from dataclasses import dataclass
 
 import torch
 
 from .target import Target
 
-__all__ = ["Affine", "find_mode", "laplace_affine", "covariance_affine"]
+__all__ = ["Affine", "find_mode", "hessian", "laplace_affine", "covariance_affine"]
 
 
 @dataclass
 class Affine:
-    """z = shift + u @ matrix.T, for row-vector particles.
+    """z = shift + u @ matrix.T for row-vector particles, optionally one map per ensemble.
 
     Attributes
     ----------
-    shift : Tensor of shape (d,)
-    matrix : Tensor of shape (d, d)
+    shift : Tensor of shape (d,) or (B, d)
+    matrix : Tensor of shape (d, d) or (B, d, d)
+        Lower triangular.
     """
 
     shift: torch.Tensor
@@ -38,21 +37,28 @@ class Affine:
         return cls(torch.zeros(dim, dtype=dtype, device=device), torch.eye(dim, dtype=dtype, device=device))
 
     def to_z(self, u: torch.Tensor) -> torch.Tensor:
-        return self.shift + u @ self.matrix.T
+        """u (B, N, d) -> z (B, N, d)."""
+        return self.shift.unsqueeze(-2) + u @ self.matrix.mT
 
     def to_u(self, z: torch.Tensor) -> torch.Tensor:
-        return torch.linalg.solve_triangular(self.matrix, (z - self.shift).unsqueeze(-1), upper=False).squeeze(-1) \
-            if self._lower else torch.linalg.solve(self.matrix, (z - self.shift).unsqueeze(-1)).squeeze(-1)
+        """z (B, N, d) -> u (B, N, d)."""
+        rhs = (z - self.shift.unsqueeze(-2)).mT
+        return torch.linalg.solve_triangular(self.matrix, rhs, upper=False).mT
 
     def score_u(self, score_z: torch.Tensor) -> torch.Tensor:
+        """Scores on z (B, N, d) -> scores on u (B, N, d)."""
         return score_z @ self.matrix
 
-    @property
-    def _lower(self) -> bool:
-        return bool(torch.equal(self.matrix, self.matrix.tril()))
+    def score_z(self, score_u: torch.Tensor) -> torch.Tensor:
+        """Scores on u (B, N, d) -> scores on z (B, N, d)."""
+        return torch.linalg.solve_triangular(self.matrix.mT, score_u.mT, upper=True).mT
 
     def state_dict(self) -> dict:
         return {"shift": self.shift.clone(), "matrix": self.matrix.clone()}
+
+    @classmethod
+    def from_state_dict(cls, state: dict) -> "Affine":
+        return cls(state["shift"].clone(), state["matrix"].clone())
 
 
 def find_mode(target: Target, start: torch.Tensor, max_iter: int = 500) -> tuple[torch.Tensor, bool]:
@@ -139,36 +145,45 @@ def laplace_affine(target: Target, mode: torch.Tensor) -> tuple[Affine, bool]:
     ok = bool((evals > 0).all())
     top = evals.abs().max().clamp_min(1e-12)
     floored = evals.abs().clamp_min(top * 1e-10)
-    matrix = evecs * floored.rsqrt()
-    # Keep a lower-triangular factor (a Cholesky factor of the same covariance) for cheap solves.
-    cov = matrix @ matrix.T
-    chol, info = torch.linalg.cholesky_ex(0.5 * (cov + cov.T))
-    if int(info) == 0:
-        matrix = chol
-    return Affine(mode.detach().clone(), matrix), ok
+    cov = (evecs / floored) @ evecs.T
+    return Affine(mode.detach().clone(), _cholesky(cov)), ok
 
 
-def covariance_affine(z: torch.Tensor, shrink: float = 1e-6) -> Affine:
-    """Whitening by the covariance of particles z (..., N, d), pooled over leading dimensions."""
-    flat = z.reshape(-1, z.shape[-1])
-    center = flat.mean(0)
-    dev = flat - center
-    n, d = flat.shape
-    cov = dev.T @ dev / max(1, n - 1)
-    if n <= d:  # too few particles for a full covariance: use the diagonal
-        cov = torch.diag(torch.diagonal(cov))
-    scale = torch.diagonal(cov).mean().clamp_min(1e-12)
-    cov = cov + shrink * scale * torch.eye(d, dtype=z.dtype, device=z.device)
-    chol, info = torch.linalg.cholesky_ex(cov)
-    if int(info) != 0:
-        chol = torch.diag(torch.diagonal(cov).clamp_min(1e-12).sqrt())
-        warnings.warn("particle covariance is not positive definite; whitening by its diagonal", RuntimeWarning)
-    return Affine(center, chol)
+def _cholesky(cov: torch.Tensor) -> torch.Tensor:
+    """Cholesky factor of a symmetric positive semi-definite matrix (..., d, d), with growing jitter."""
+    cov = 0.5 * (cov + cov.mT)
+    scale = torch.diagonal(cov, dim1=-2, dim2=-1).mean(-1).clamp_min(1e-300)[..., None, None]
+    eye = torch.eye(cov.shape[-1], dtype=cov.dtype, device=cov.device)
+    for jitter in (0.0, 1e-10, 1e-8, 1e-6, 1e-4):
+        chol, info = torch.linalg.cholesky_ex(cov + jitter * scale * eye)
+        if not bool((info != 0).any()):
+            return chol
+    return torch.diag_embed(torch.diagonal(cov, dim1=-2, dim2=-1).clamp_min(1e-300).sqrt())
+
+
+def covariance_affine(u: torch.Tensor, affine: Affine) -> Affine:
+    """Re-whitening by the particles' own mean and covariance, one map per ensemble.
+
+    Parameters
+    ----------
+    u : Tensor of shape (B, N, d)
+        Particles in the coordinates of ``affine``.
+
+    Returns
+    -------
+    Affine with shift (B, d) and matrix (B, d, d), mapping new whitened coordinates to z.
+    """
+    z = affine.to_z(u)
+    n, d = z.shape[-2:]
+    center = z.mean(-2)
+    dev = z - center.unsqueeze(-2)
+    cov = dev.mT @ dev / max(1, n - 1)
+    if n <= d:  # too few particles for a full covariance: keep the diagonal
+        cov = torch.diag_embed(torch.diagonal(cov, dim1=-2, dim2=-1))
+    return Affine(center, _cholesky(cov))
 
 
 def default_start(target: Target, dtype, device=None) -> torch.Tensor:
     """The origin of the unconstrained space (mu = 0, tau = 1, theta = 0.5, ...)."""
     return torch.zeros(target.dim, dtype=dtype, device=device)
 
-
-_ = math  # (kept for future log-volume terms)

@@ -15,7 +15,7 @@ import numpy as np
 import torch
 
 from .kernels import RBF, Kernel, Linear
-from .precondition import Affine, default_start, find_mode, laplace_affine
+from .precondition import Affine, covariance_affine, default_start, find_mode, laplace_affine
 from .result import Result
 from .stein import svgd_direction
 from .steppers import Stepper, as_stepper
@@ -26,6 +26,8 @@ __all__ = ["sample", "Sampler", "default_kernel", "default_stepper"]
 MAX_BACKTRACK = 10  # halvings of a faulty particle's step before it is put back where it was
 FAULT_PATIENCE = 25  # consecutive steps with faults before the run gives up
 LAPLACE_MAX_DIM = 1000  # dense Hessian whitening up to this many coordinates
+REWHITEN_FIRST = 25  # re-whiten by the particles' covariance at steps 25, 50, 100, 200, ...
+PRECONDITIONS = ("auto", "laplace", "covariance", None)
 
 
 def default_kernel() -> Kernel:
@@ -79,10 +81,10 @@ class Sampler:
             raise TypeError(f"dtype must be torch.float64 or torch.float32, got {dtype!r}")
         self.dtype = dtype
         self.device = torch.device(device) if device is not None else torch.device("cpu")
-        if precondition not in ("auto", "laplace", None):
-            raise ValueError(f"precondition must be one of 'auto', 'laplace', None; got {precondition!r}")
+        if precondition not in PRECONDITIONS:
+            raise ValueError(f"precondition must be one of {PRECONDITIONS}; got {precondition!r}")
         if precondition == "auto":
-            precondition = "laplace" if target.dim <= LAPLACE_MAX_DIM else None
+            precondition = "laplace" if target.dim <= LAPLACE_MAX_DIM else "covariance"
         self.precondition = precondition
         if seed is not None:
             _check_count(seed, "seed", minimum=0)
@@ -161,20 +163,30 @@ class Sampler:
         return z.to(self.dtype).to(self.device)
 
     # ------------------------------------------------------------------ evaluation
-    def _evaluate(self, u: torch.Tensor, first: bool = False):
-        """Log density, whitened score and a fault mask for particles u (..., d)."""
+    def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None, first: bool = False):
+        """Log density, whitened score and fault mask for particles u (B, N, d).
+
+        With ``mask`` (B, N) only the masked particles are evaluated; the others come back NaN.
+        """
         z = self.affine.to_z(u)
+        zs = z if mask is None else z[mask]
         try:
-            lp, score = self.target.log_prob_and_score(z)
+            lp_s, sz_s = self.target.log_prob_and_score(zs)
         except (TypeError, ValueError):
             raise
         except Exception:
             if first:
                 raise
-            lp, score = self._evaluate_one_by_one(z)
-        self.grad_evals += u.shape[:-1].numel()
-        bad = ~(torch.isfinite(lp) & torch.isfinite(score).all(-1))
-        return lp, self.affine.score_u(score), bad
+            lp_s, sz_s = self._evaluate_one_by_one(zs)
+        self.grad_evals += zs.shape[:-1].numel()
+        if mask is None:
+            lp, sz = lp_s, sz_s
+        else:
+            lp = torch.full(z.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
+            sz = torch.full_like(z, float("nan"))
+            lp[mask], sz[mask] = lp_s, sz_s
+        bad = ~(torch.isfinite(lp) & torch.isfinite(sz).all(-1))
+        return lp, self.affine.score_u(sz), bad
 
     def _evaluate_one_by_one(self, z):
         """Isolate the particles on which the user's function raises (fault path only)."""
@@ -207,14 +219,15 @@ class Sampler:
         for _ in range(MAX_BACKTRACK):
             if not bad.any():
                 break
-            idx = bad.nonzero(as_tuple=True)
-            u_new[idx] = 0.5 * (u_new[idx] + self.u[idx])
-            lp_b, score_b, bad_b = self._evaluate(u_new[idx])
-            lp[idx], score[idx] = lp_b, score_b
-            bad = torch.zeros_like(bad)
-            bad[idx] = bad_b
+            u_new = torch.where(bad[..., None], 0.5 * (u_new + self.u), u_new)
+            lp_b, score_b, bad_b = self._evaluate(u_new, mask=bad)
+            lp = torch.where(bad, lp_b, lp)
+            score = torch.where(bad[..., None], score_b, score)
+            bad = bad & bad_b
         if bad.any():  # give up on this step for these particles: they stay where they were
-            u_new[bad], lp[bad], score[bad] = self.u[bad], self.lp[bad], self.score[bad]
+            u_new = torch.where(bad[..., None], self.u, u_new)
+            lp = torch.where(bad, self.lp, lp)
+            score = torch.where(bad[..., None], self.score, score)
         self._fault_streak = self._fault_streak + 1 if faults else 0
         if self._fault_streak >= FAULT_PATIENCE:
             raise FloatingPointError(
@@ -226,6 +239,28 @@ class Sampler:
         self.u, self.lp, self.score = u_new, lp, score
         self.step_count += 1
         self._record(phi=phi, faults=faults)
+        if self._rewhiten_due():
+            self.rewhiten()
+
+    def _rewhiten_due(self) -> bool:
+        if self.precondition not in ("laplace", "covariance") or self.step_count < REWHITEN_FIRST:
+            return False
+        ratio = self.step_count // REWHITEN_FIRST
+        return self.step_count % REWHITEN_FIRST == 0 and ratio & (ratio - 1) == 0
+
+    def rewhiten(self) -> None:
+        """Whiten by the particles' current mean and covariance (per ensemble); positions unchanged.
+
+        The new coordinates make the particle set look standard normal, so the kernel's isotropic
+        bandwidth fits the posterior's shape even where the curvature at the mode did not. The step
+        rule restarts (its state referred to the old coordinates).
+        """
+        z = self.affine.to_z(self.u)
+        score_z = self.affine.score_z(self.score)
+        self.affine = covariance_affine(self.u, self.affine)
+        self.u = self.affine.to_u(z)
+        self.score = self.affine.score_u(score_z)
+        self.stepper.bind(self.u)
 
     def _record(self, **figures):
         row = {
