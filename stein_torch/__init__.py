@@ -7,7 +7,8 @@
 torch.Size([1, 100, 2])
 """
 
-from . import kernels, steppers
+from . import io, kernels, steppers
+from .io import load
 from .result import Result
 from .sample import Sampler, sample
 from .stein import ksd, svgd_direction
@@ -20,8 +21,10 @@ __all__ = [
     "Result",
     "Sampler",
     "Target",
+    "io",
     "kernels",
     "ksd",
+    "load",
     "sample",
     "steppers",
     "svgd_direction",

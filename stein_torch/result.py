@@ -104,6 +104,17 @@ class Result:
             kwargs.setdefault("kind", "stats")
         return az.summary(self.to_inference_data(), **kwargs)
 
+    def save(self, path) -> None:
+        """Write the result to ``path`` atomically (temporary file, fsync, rename).
+
+        ``*.nc``: NetCDF of :meth:`to_inference_data` (read with ``arviz.from_netcdf``). Any other
+        name: a torch file of tensors, numbers and strings only, read back without running code by
+        ``stein_torch.load(path, target)``.
+        """
+        from .io import save_result
+
+        save_result(self, path)
+
     def __repr__(self) -> str:
         chains, draws = self.particles.shape[:2]
         return f"Result(method={self.method!r}, chains={chains}, draws={draws}, stop_reason={self.stop_reason!r})"

@@ -9,14 +9,19 @@ import functools
 import math
 import numbers
 import sys
+import warnings
 from typing import Callable, Mapping
 
 import numpy as np
 import torch
 
+from . import io
+from .checks import check_device
+from .interrupts import InterruptGuard
 from .kernels import RBF, Kernel, Linear
 from .precondition import Affine, covariance_affine, default_start, find_mode, laplace_affine
 from .result import Result
+from .state import capture_state, restore_state
 from .stein import svgd_direction
 from .steppers import Stepper, as_stepper
 from .target import Target
@@ -28,6 +33,7 @@ FAULT_PATIENCE = 25  # consecutive steps with faults before the run gives up
 LAPLACE_MAX_DIM = 1000  # dense Hessian whitening up to this many coordinates
 REWHITEN_FIRST = 25  # re-whiten by the particles' covariance at steps 25, 50, 100, 200, ...
 PRECONDITIONS = ("auto", "laplace", "covariance", None)
+CHECKPOINT_EVERY = 100  # steps between checkpoints when a checkpoint file is given
 
 
 def default_kernel() -> Kernel:
@@ -46,6 +52,31 @@ def _check_count(value, name: str, minimum: int = 1) -> int:
     if value < minimum:
         raise ValueError(f"{name} == {value}, must be >= {minimum}")
     return int(value)
+
+
+class _FailuresAsNaN:
+    """A view of a target whose evaluation errors read as NaN, for the mode search.
+
+    A log density that raises outside the region where it is defined (e.g. a distribution's
+    argument validation) must not stop the set-up; the mode search then treats the point like any
+    other non-finite one.
+    """
+
+    def __init__(self, target: Target):
+        self._target = target
+
+    def __getattr__(self, name):
+        return getattr(self._target, name)
+
+    def log_prob_and_score(self, z):
+        try:
+            return self._target.log_prob_and_score(z)
+        except Exception:
+            nan = torch.full(z.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
+            return nan, torch.full_like(z, float("nan"))
+
+    def log_prob(self, z):
+        return self.log_prob_and_score(z)[0]
 
 
 class Sampler:
@@ -67,6 +98,7 @@ class Sampler:
         precondition: str | None = "auto",
         seed: int | None = None,
         device=None,
+        state: Mapping | None = None,
     ):
         if not isinstance(target, Target):
             raise TypeError(f"target must be a stein_torch.Target, got {type(target).__qualname__}")
@@ -80,14 +112,20 @@ class Sampler:
         if dtype not in (torch.float32, torch.float64):
             raise TypeError(f"dtype must be torch.float64 or torch.float32, got {dtype!r}")
         self.dtype = dtype
-        self.device = torch.device(device) if device is not None else torch.device("cpu")
-        if precondition not in PRECONDITIONS:
+        self.device = check_device(device)
+        if not (precondition is None or isinstance(precondition, str)) or precondition not in PRECONDITIONS:
             raise ValueError(f"precondition must be one of {PRECONDITIONS}; got {precondition!r}")
         if precondition == "auto":
             precondition = "laplace" if target.dim <= LAPLACE_MAX_DIM else "covariance"
         self.precondition = precondition
+        if state is not None and not isinstance(state, Mapping):
+            raise TypeError(f"state must be a dict from Sampler.state_dict(), got {type(state).__qualname__}")
+        if seed is None and state is not None and isinstance(state.get("settings"), Mapping):
+            seed = state["settings"].get("seed")  # resuming without a seed: keep the checkpoint's
         if seed is not None:
             _check_count(seed, "seed", minimum=0)
+            if seed >= 2**64:
+                raise ValueError(f"seed == {seed}, must be < 2**64")
         self.seed = int(seed) if seed is not None else int(torch.seed() % (2**63))
         self.generator = torch.Generator().manual_seed(self.seed)
         self.init = init
@@ -96,7 +134,11 @@ class Sampler:
         self.drive: Callable[[int], float] = lambda step: 1.0
         self._trace: dict[str, list] = {}
         self._fault_streak = 0
-        self._setup()
+        self._last_error: BaseException | None = None
+        if state is None:
+            self._setup()
+        else:  # resuming: the set-up (mode, whitening) comes from the checkpoint, not recomputed
+            self.load_state_dict(state, argname="resume")
 
     # ------------------------------------------------------------------ set-up
     def _setup(self):
@@ -106,9 +148,9 @@ class Sampler:
         self.laplace_ok = False
         if self.precondition == "laplace":
             start = user_init.reshape(-1, dim).mean(0) if user_init is not None else default_start(t, self.dtype, self.device)
-            mode, ok = find_mode(t, start)
+            mode, ok = find_mode(_FailuresAsNaN(t), start)
             if ok:
-                self.affine, self.laplace_ok = laplace_affine(t, mode)
+                self.affine, self.laplace_ok = laplace_affine(_FailuresAsNaN(t), mode)
                 self.affine.shift = mode
         shape = (self.ensembles, self.n, dim)
         if user_init is not None:
@@ -152,7 +194,7 @@ class Sampler:
             init = {"x": init}
         if not isinstance(init, Mapping):
             raise TypeError(f"init: expected a tensor or dict of tensors, got {type(init).__qualname__}")
-        z = t.unconstrain({k: torch.as_tensor(v, dtype=self.dtype) for k, v in init.items()}, "init")
+        z = t.unconstrain({k: self._init_values(k, v) for k, v in init.items()}, "init")
         if z.dim() == 2 and self.ensembles == 1:
             z = z[None]
         if tuple(z.shape[:-1]) != (self.ensembles, self.n):
@@ -162,22 +204,38 @@ class Sampler:
             )
         return z.to(self.dtype).to(self.device)
 
+    def _init_values(self, name, value) -> torch.Tensor:
+        """One entry of a user ``init``: real numbers on a usable device, in the sampler's dtype."""
+        try:
+            v = torch.as_tensor(value)
+        except (TypeError, ValueError, RuntimeError):
+            raise TypeError(
+                f"init[{name!r}]: expected a tensor or array of numbers, got {type(value).__qualname__}"
+            ) from None
+        if v.device.type == "meta":
+            raise ValueError(f"init[{name!r}]: a 'meta' tensor holds no values")
+        if v.is_complex() or v.dtype == torch.bool:
+            raise TypeError(f"init[{name!r}]: expected real numbers, got dtype {v.dtype}")
+        return v.to(dtype=self.dtype, device=self.device)
+
     # ------------------------------------------------------------------ evaluation
     def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None, first: bool = False):
-        """Log density, whitened score and fault mask for particles u (B, N, d).
+        """Log density, whitened score and a fault mask for particles u (B, N, d).
 
-        With ``mask`` (B, N) only the masked particles are evaluated; the others come back NaN.
+        A particle is faulty when its position, log density or score is not finite, or when the
+        user's function raises for it. With ``mask`` (B, N) only the masked particles are evaluated
+        (the others come back NaN). With ``first`` (the initial particles), an error raised for
+        every particle is a bug in the model, not a region fault, and is re-raised.
         """
         z = self.affine.to_z(u)
         zs = z if mask is None else z[mask]
         try:
             lp_s, sz_s = self.target.log_prob_and_score(zs)
-        except (TypeError, ValueError):
-            raise
-        except Exception:
-            if first:
+        except Exception as err:
+            lp_s, sz_s, raised = self._evaluate_one_by_one(zs)
+            if first and bool(raised.all()):
                 raise
-            lp_s, sz_s = self._evaluate_one_by_one(zs)
+            self._last_error = err
         self.grad_evals += zs.shape[:-1].numel()
         if mask is None:
             lp, sz = lp_s, sz_s
@@ -185,7 +243,7 @@ class Sampler:
             lp = torch.full(z.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
             sz = torch.full_like(z, float("nan"))
             lp[mask], sz[mask] = lp_s, sz_s
-        bad = ~(torch.isfinite(lp) & torch.isfinite(sz).all(-1))
+        bad = ~(torch.isfinite(lp) & torch.isfinite(sz).all(-1) & torch.isfinite(z).all(-1))
         return lp, self.affine.score_u(sz), bad
 
     def _evaluate_one_by_one(self, z):
@@ -193,12 +251,13 @@ class Sampler:
         flat = z.reshape(-1, z.shape[-1])
         lp = torch.full(flat.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
         score = torch.full_like(flat, float("nan"))
+        raised = torch.zeros(flat.shape[:-1], dtype=torch.bool, device=z.device)
         for i in range(flat.shape[0]):
             try:
                 lp[i : i + 1], score[i : i + 1] = self.target.log_prob_and_score(flat[i : i + 1])
             except Exception:
-                pass
-        return lp.reshape(z.shape[:-1]), score.reshape(z.shape)
+                raised[i] = True
+        return lp.reshape(z.shape[:-1]), score.reshape(z.shape), raised.reshape(z.shape[:-1])
 
     def direction(self, u, score, lp) -> torch.Tensor:
         """The SVGD direction at particles u (B, N, d) with whitened scores."""
@@ -224,21 +283,19 @@ class Sampler:
             lp = torch.where(bad, lp_b, lp)
             score = torch.where(bad[..., None], score_b, score)
             bad = bad & bad_b
-        if bad.any():  # give up on this step for these particles: they stay where they were
+        reverted = int(bad.sum())
+        if reverted:  # give up on this step for these particles: they stay where they were
             u_new = torch.where(bad[..., None], self.u, u_new)
             lp = torch.where(bad, self.lp, lp)
             score = torch.where(bad[..., None], self.score, score)
         self._fault_streak = self._fault_streak + 1 if faults else 0
+        if not faults:
+            self._last_error = None
         if self._fault_streak >= FAULT_PATIENCE:
-            raise FloatingPointError(
-                f"step {self.step_count}: the log density or its gradient was NaN/inf (or raised) for "
-                f"{faults} of {bad.numel()} particles in each of the last {FAULT_PATIENCE} steps. "
-                "Hint: constrain parameters that have a restricted domain (st.Param(constraint=...)), "
-                "or lower the step size."
-            )
+            raise FloatingPointError(self._fault_message(faults, reverted, bad.numel())) from self._last_error
         self.u, self.lp, self.score = u_new, lp, score
         self.step_count += 1
-        self._record(phi=phi, faults=faults)
+        self._record(phi=phi, faults=faults, reverted=reverted)
         if self._rewhiten_due():
             self.rewhiten()
 
@@ -262,12 +319,25 @@ class Sampler:
         self.score = self.affine.score_u(score_z)
         self.stepper.bind(self.u)
 
+    def _fault_message(self, faults: int, reverted: int, total: int) -> str:
+        last = self._last_error
+        raised = f" Last error raised by the log density: {type(last).__name__}: {last}." if last else ""
+        return (
+            f"step {self.step_count + 1}: the log density or its score was NaN/inf (or raised) for some "
+            f"particles in each of the last {FAULT_PATIENCE} steps; in this step {faults} of {total} "
+            f"particles were faulty and {reverted} could not be moved even with a step shrunk "
+            f"{2**MAX_BACKTRACK}-fold.{raised} Hint: give parameters with a restricted domain a "
+            "constraint (st.Param(constraint=...)) so the sampler never leaves it, make the log density "
+            "finite wherever it is called, or lower the step size."
+        )
+
     def _record(self, **figures):
         row = {
             "lp": float(self.lp.mean()),
             "step_size": self.stepper.step_size,
             "phi_rms": float(figures["phi"].pow(2).mean().sqrt()),
             "faults": figures["faults"],
+            "reverted": figures["reverted"],
             "grad_evals": self.grad_evals,
         }
         h = _bandwidth(self.kernel)
@@ -276,21 +346,70 @@ class Sampler:
         for k, v in row.items():
             self._trace.setdefault(k, []).append(v)
 
-    def run(self, steps: int, progress: bool | None = None) -> "Sampler":
-        """Take ``steps`` steps, with a progress bar when ``progress`` (default: when on a terminal)."""
+    def run(
+        self, steps: int, progress: bool | None = None, *, checkpoint=None, checkpoint_every: int | None = None
+    ) -> "Sampler":
+        """Take ``steps`` more steps, with a progress bar when ``progress`` (default: on a terminal).
+
+        Ctrl-C stops after the current step with ``stop_reason = "interrupted"``; a second Ctrl-C
+        raises KeyboardInterrupt. With ``checkpoint`` the state is written there atomically every
+        ``checkpoint_every`` steps (default 100), on interruption and at the end.
+        """
         steps = _check_count(steps, "steps", minimum=0)
+        if checkpoint is not None:
+            checkpoint = io.check_output_path(checkpoint, "checkpoint")
+        every = CHECKPOINT_EVERY if checkpoint_every is None else _check_count(checkpoint_every, "checkpoint_every")
         if progress is None:
             progress = sys.stderr.isatty()
         from tqdm.auto import tqdm
 
-        with tqdm(total=steps, desc="svgd", disable=not progress, leave=False) as bar:
-            for _ in range(steps):
-                self.step()
-                bar.update(1)
-                if self.step_count % 10 == 0:
-                    bar.set_postfix(lp=f"{self._trace['lp'][-1]:.4g}", step=f"{self.stepper.step_size:.3g}")
         self.stop_reason = "steps"
+        saved_at, consistent = None, True
+        with InterruptGuard() as interrupt, tqdm(total=steps, desc="svgd", disable=not progress, leave=False) as bar:
+            try:
+                for _ in range(steps):
+                    if interrupt.requested:
+                        self.stop_reason = "interrupted"
+                        break
+                    self.step()
+                    bar.update(1)
+                    if self.step_count % 10 == 0:
+                        bar.set_postfix(lp=f"{self._trace['lp'][-1]:.4g}", step=f"{self.stepper.step_size:.3g}")
+                    if checkpoint is not None and self.step_count % every == 0:
+                        self.save(checkpoint)
+                        saved_at = self.step_count
+            except KeyboardInterrupt:  # not through the guard (no handler installed): maybe mid-step
+                if interrupt.aborted:
+                    raise
+                self.stop_reason, consistent = "interrupted", False
+            if checkpoint is not None and saved_at != self.step_count:
+                if consistent:
+                    self.save(checkpoint)
+                else:
+                    warnings.warn(
+                        f"checkpoint: interrupted inside step {self.step_count + 1}; the optimizer state may be "
+                        f"ahead of the particles, so {checkpoint!r} keeps the last state saved before it",
+                        RuntimeWarning, stacklevel=2,
+                    )
         return self
+
+    # ------------------------------------------------------------------ state
+    def state_dict(self) -> dict:
+        """Everything needed to continue this run bit for bit (see :func:`stein_torch.state.capture_state`).
+
+        Tensors, numbers, strings, lists and dicts only: particles, log densities and scores,
+        whitening, step and evaluation counters, the torch.Generator state, the trace, and the
+        ``state_dict()`` of every part that has one (kernel, stepper, stop rule, ...).
+        """
+        return capture_state(self)
+
+    def load_state_dict(self, state_dict: Mapping, *, argname: str = "state") -> None:
+        """Continue from :meth:`state_dict`; the target and run settings must match (ValueError)."""
+        restore_state(self, state_dict, argname)
+
+    def save(self, path) -> None:
+        """Write :meth:`state_dict` to ``path`` atomically (see :mod:`stein_torch.io`)."""
+        io.save_checkpoint(path, self.state_dict())
 
     # ------------------------------------------------------------------ output
     def result(self) -> Result:
@@ -335,6 +454,9 @@ def sample(
     progress: bool | None = None,
     seed: int | None = None,
     device=None,
+    checkpoint=None,
+    checkpoint_every: int | None = None,
+    resume=None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
 
@@ -368,18 +490,49 @@ def sample(
         Show a tqdm bar (step, mean log density, step size); default on when stderr is a terminal.
     seed : int, optional
         Same seed, same draws.
+    device : str or torch.device, optional
+        "cpu" (default) or an available CUDA device.
+    checkpoint : str or os.PathLike, optional
+        File to write the sampler state to, atomically (temporary file, fsync, rename): every
+        ``checkpoint_every`` steps, when interrupted, and at the end.
+    checkpoint_every : int, optional
+        Steps between checkpoints (default 100).
+    resume : str or os.PathLike, optional
+        Continue the run saved in this checkpoint up to ``steps`` steps in total. The set-up (mode,
+        whitening) is restored from the file, not recomputed; ``init`` is ignored. Target and
+        settings must be those of the saved run; the draws are then bit for bit those of an
+        uninterrupted run. Loading never executes code from the file.
 
     Returns
     -------
     Result
         ``draws`` (name -> (ensembles, particles, *shape), constrained), ``trace``,
-        ``to_inference_data()``, ``summary()``.
+        ``to_inference_data()``, ``summary()``, ``stop_reason`` ("steps", or "interrupted" after
+        Ctrl-C: the first press finishes the current step and returns, a second one aborts).
+
+    Raises
+    ------
+    FloatingPointError
+        The log density stayed NaN/inf (or raised) for some particles in 25 consecutive steps.
     """
+    steps = _check_count(steps, "steps", minimum=0)
+    if progress is not None and not isinstance(progress, (bool, np.bool_)):
+        raise TypeError(f"progress must be True, False or None, got {type(progress).__qualname__} ({progress!r})")
+    if checkpoint is not None:
+        checkpoint = io.check_output_path(checkpoint, "checkpoint")
+    if checkpoint_every is not None:
+        if checkpoint is None:
+            raise ValueError("checkpoint_every is set but checkpoint (the file to write) is not")
+        _check_count(checkpoint_every, "checkpoint_every")
+    state = io.load_checkpoint(resume, "resume") if resume is not None else None
     sampler = Sampler(
         target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
-        precondition=precondition, seed=seed, device=device,
+        precondition=precondition, seed=seed, device=device, state=state,
     )
-    return sampler.run(steps, progress=progress).result()
+    if sampler.step_count > steps:
+        raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")
+    sampler.run(steps - sampler.step_count, progress=progress, checkpoint=checkpoint, checkpoint_every=checkpoint_every)
+    return sampler.result()
 
 
 _ = math

@@ -8,6 +8,7 @@ returns the new particles.
 from __future__ import annotations
 
 import functools
+import math
 from typing import Callable
 
 import torch
@@ -60,9 +61,16 @@ class Optim(Stepper):
 
     def bind(self, particles):
         self._param = torch.nn.Parameter(particles.detach().clone())
-        opt = self.factory([self._param])
+        try:
+            opt = self.factory([self._param])
+        except (TypeError, ValueError) as err:  # e.g. torch.optim's "Invalid learning rate: -1"
+            raise type(err)(f"stepper: the optimizer factory {self!r} failed: {err}") from err
         if not isinstance(opt, torch.optim.Optimizer):
             raise TypeError(f"stepper: the factory must return a torch.optim.Optimizer, got {type(opt).__qualname__}")
+        for group in opt.param_groups:  # torch.optim lets NaN through some checks ("lr < 0" is False)
+            lr = group.get("lr")
+            if isinstance(lr, (int, float)) and not math.isfinite(lr):
+                raise ValueError(f"stepper: the learning rate must be finite, got lr={lr}")
         self.optimizer = opt
 
     def step(self, u, phi, velocity):

@@ -54,6 +54,13 @@ class Param:
                 "Param: constraint must be a torch.distributions.constraints.Constraint, "
                 f"got {type(self.constraint).__qualname__}"
             )
+        lower = getattr(self.constraint, "lower_bound", None)
+        upper = getattr(self.constraint, "upper_bound", None)
+        for bound in (lower, upper):
+            if bound is not None and bool(torch.isnan(torch.as_tensor(bound)).any()):
+                raise ValueError(f"Param: constraint {self.constraint!r} has a NaN bound")
+        if lower is not None and upper is not None and not bool((torch.as_tensor(lower) < torch.as_tensor(upper)).all()):
+            raise ValueError(f"Param: constraint {self.constraint!r} is empty (lower_bound must be < upper_bound)")
         try:
             biject_to(self.constraint)
         except NotImplementedError:
@@ -233,7 +240,7 @@ class Target:
                 raise ValueError(f"{argname}: batch shapes differ between parameters: {tuple(batch)} vs {tuple(vb)}")
             batch = vb
             inside = b.constraint.check(v)
-            inside = inside.reshape(*vb, -1).all(-1) if inside.dim() > len(vb) else inside
+            inside = inside.flatten(len(vb)).all(-1) if inside.dim() > len(vb) else inside
             if not bool(inside.all()):
                 raise ValueError(
                     f"{argname}[{b.name!r}]: {int((~inside).sum())} of {inside.numel()} values lie outside "
@@ -254,6 +261,8 @@ class Target:
         out = self._user_fn(arg) if self._mode == "batched" else self._lifted(arg, batch_shape)
         if not isinstance(out, torch.Tensor):
             raise TypeError(f"log_prob must return a torch.Tensor, got {type(out).__qualname__}")
+        if out.is_complex() or not out.is_floating_point():
+            raise TypeError(f"log_prob must return a real floating-point tensor, got dtype {out.dtype}")
         if out.shape != batch_shape:
             raise ValueError(
                 f"log_prob returned shape {tuple(out.shape)} for a batch of shape {tuple(batch_shape)}; "
