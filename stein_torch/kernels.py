@@ -272,21 +272,48 @@ class GammaExponential(RadialKernel):
 
 
 class Linear(Kernel):
-    """Linear kernel x~ . y~ + 1 on coordinates standardised by the particles' mean and sd.
+    """Linear kernel f(x) . f(y) + 1 on coordinates standardised by the particles' mean and sd.
 
     Added to a radial kernel it makes the fixed points of SVGD match the target's first and second
     moments on Gaussian targets, curing the spread underestimation of SVGD with few particles in
     high dimension ("Stein Variational Gradient Descent as Moment Matching", arXiv:1810.11693, from
     memory). Mean and sd are those of the particle set at each step, held fixed within the step.
+
+    Parameters
+    ----------
+    radius : float, optional
+        None: f(x) = x~ = (x - mean) / sd. A number r: the features saturate,
+        f(x) = x~ / sqrt(1 + |x~|^2 / (r^2 d)), so a particle far in a tail is no longer pushed in
+        proportion to its distance by the other particles' moment mismatch (common practice to keep
+        heavy tails stable; the Stein identity still holds for any smooth features).
     """
+
+    def __init__(self, radius: float | None = None):
+        if radius is not None and (
+            isinstance(radius, bool) or not isinstance(radius, numbers.Real) or not (math.isfinite(radius) and radius > 0)
+        ):
+            raise ValueError(f"Linear: radius must be a positive number or None, got {radius!r}")
+        self.radius = None if radius is None else float(radius)
+
+    def features(self, x, center, scale):
+        xt = (x - center) / scale
+        if self.radius is None:
+            return xt
+        return xt / (1 + (xt * xt).sum(-1, keepdim=True) / (self.radius**2 * x.shape[-1])).sqrt()
 
     def __call__(self, x, y, center=None, scale=None):
         if center is None:
             center, scale = standardizer(x)
-        return ((x - center) / scale) @ ((y - center) / scale).transpose(-1, -2) + 1
+        return self.features(x, center, scale) @ self.features(y, center, scale).mT + 1
+
+    def state_dict(self):
+        return {"radius": self.radius}
+
+    def load_state_dict(self, state):
+        self.radius = state.get("radius")
 
     def __repr__(self):
-        return "Linear()"
+        return "Linear()" if self.radius is None else f"Linear(radius={self.radius})"
 
 
 def standardizer(x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:

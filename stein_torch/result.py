@@ -90,7 +90,10 @@ class Result:
         attrs = {"inference_library": "stein_torch", "inference_library_version": __version__}
         attrs.update({k: _attr_value(v) for k, v in self.settings.items()})
         attrs["stop_reason"] = self.stop_reason
-        return az.from_dict(posterior=posterior, sample_stats=stats, dims=dims, attrs=attrs, **groups)
+        return az.from_dict(
+            posterior=posterior, sample_stats=stats, dims=dims, attrs=attrs, posterior_attrs=attrs,
+            sample_stats_attrs=attrs, **groups,
+        )
 
     def summary(self, **kwargs):
         """Posterior summary by :func:`arviz.summary` (a pandas DataFrame).

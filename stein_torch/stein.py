@@ -103,17 +103,26 @@ def radial_direction(
     return out / n
 
 
-def linear_direction(x: torch.Tensor, score: torch.Tensor, *, score_coef: float = 1.0) -> torch.Tensor:
+def linear_direction(
+    x: torch.Tensor, score: torch.Tensor, *, score_coef: float = 1.0, radius: float | None = None
+) -> torch.Tensor:
     """SVGD direction of :class:`~stein_torch.kernels.Linear`, in O(N d^2).
 
-    phi_i = x~_i (1/N) sum_j x~_j s_j^T + mean_j s_j + (x_i - m) / sd^2 with x~ = (x - m) / sd.
+    With features f(x) = x~ (x~ = (x - m) / sd) the kernel is f(x).f(y) + 1 and
+    phi_i = f_i (1/N) sum_j f_j s_j^T + mean_j s_j + (1/N) sum_j J_j^T f_i, J = df/dx.
+    With ``radius`` r the features saturate, f = x~ / rho with rho = sqrt(1 + |x~|^2 / (r^2 d)).
     """
     center, scale = standardizer(x)
     xt = (x - center) / scale
-    n = x.shape[-2]
+    n, d = x.shape[-2:]
     s = score_coef * score
-    a = xt.transpose(-1, -2) @ s / n  # (B, d, d)
-    return xt @ a + s.mean(-2, keepdim=True) + (x - center) / scale**2
+    if radius is None:
+        return xt @ (xt.mT @ s / n) + s.mean(-2, keepdim=True) + xt / scale
+    rho = (1 + (xt * xt).sum(-1, keepdim=True) / (radius**2 * d)).sqrt()  # (B, N, 1)
+    f = xt / rho
+    curl = xt.mT @ (xt / (radius**2 * d * rho**3)) / n  # (1/N) sum_j x~_j x~_j^T / (r^2 d rho_j^3)
+    grad_term = ((1 / rho).mean(-2, keepdim=True) * f - f @ curl) / scale
+    return f @ (f.mT @ s / n) + s.mean(-2, keepdim=True) + grad_term
 
 
 def svgd_direction(
@@ -157,7 +166,7 @@ def _direction(x, s, kernel, drive, lp, generator, chunk_elements):
     if isinstance(kernel, Sum):
         return sum(_direction(x, s, part, drive, lp, generator, chunk_elements) for part in kernel.parts)
     if isinstance(kernel, Linear):
-        return linear_direction(x, s, score_coef=drive)
+        return linear_direction(x, s, score_coef=drive, radius=kernel.radius)
     if hasattr(kernel, "stein_direction"):  # kernels that bring their own (e.g. target-weighted)
         return kernel.stein_direction(x, s, drive=drive, log_prob=lp, generator=generator, chunk_elements=chunk_elements)
     if isinstance(kernel, RadialKernel):

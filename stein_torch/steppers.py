@@ -52,10 +52,13 @@ class Optim(Stepper):
     >>> stepper = st.steppers.Optim(functools.partial(torch.optim.SGD, lr=0.1, momentum=0.5))
     """
 
-    def __init__(self, optimizer: Callable):
+    def __init__(self, optimizer: Callable, *, max_move: float | None = None):
         if not callable(optimizer):
             raise TypeError(f"Optim: optimizer must be callable (params -> Optimizer), got {type(optimizer).__qualname__}")
+        if max_move is not None and not (isinstance(max_move, (int, float)) and math.isfinite(max_move) and max_move > 0):
+            raise ValueError(f"Optim: max_move must be a positive number or None, got {max_move!r}")
         self.factory = optimizer
+        self.max_move = max_move
         self.optimizer = None
         self._param = None
 
@@ -76,6 +79,9 @@ class Optim(Stepper):
     def step(self, u, phi, velocity):
         with torch.no_grad():
             self._param.copy_(u)
+        if self.max_move is not None:  # for plain gradient steps: no particle moves more than max_move
+            move = self.step_size * phi.norm(dim=-1, keepdim=True)
+            phi = phi * (self.max_move / move.clamp_min(self.max_move))
         self._param.grad = -phi
         self.optimizer.step()
         return self._param.detach().clone()

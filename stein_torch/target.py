@@ -356,7 +356,16 @@ class Target:
         """
         with torch.enable_grad():
             z = z.detach().requires_grad_(True)
-            lp = self.log_prob(z)
+            try:
+                lp = self.log_prob(z)
+            except RuntimeError as err:
+                if "dtype" not in str(err) and "Double" not in str(err) and "Float" not in str(err):
+                    raise
+                raise TypeError(
+                    f"log_prob failed on {z.dtype} parameters ({err}). Hint: tensors captured by the model "
+                    f"(data, constants) must share the sampler's dtype: convert them with .to({z.dtype}) or "
+                    "pass dtype= to st.sample"
+                ) from err
             if not lp.requires_grad:
                 raise ValueError(
                     "log_prob is not differentiable: its output does not depend on the parameters through "
