@@ -29,6 +29,7 @@ import torch
 __all__ = ["Kernel", "RadialKernel", "RBF", "IMQ", "Matern", "GammaExponential", "Linear", "Sum"]
 
 MEDIAN_PAIRS = 1 << 15  # pairs used by the median heuristic; all pairs when fewer exist
+MEDIAN_BLOCK = 1 << 16  # entries of the (pairs, d) differences formed at once by the median heuristic
 
 
 class Kernel:
@@ -92,8 +93,15 @@ def median_bandwidth(x: torch.Tensor, generator: torch.Generator | None = None) 
     else:
         i = torch.randint(n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)
         j = (i + torch.randint(1, n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)) % n
-    d2 = (x[..., i, :] - x[..., j, :]).pow(2).sum(-1)
-    med = d2.median(-1).values
+    # In blocks of pairs with index_select (not x[..., i, :]): same values, but small temporaries
+    # that the allocator reuses instead of fresh pages for (pairs, d) arrays (10-20x faster here).
+    d2 = torch.empty((*x.shape[:-2], i.numel()), dtype=x.dtype, device=x.device)
+    block = max(1, MEDIAN_BLOCK // max(1, x.shape[:-2].numel() * x.shape[-1]))
+    for a in range(0, i.numel(), block):
+        ia, ja = i[a : a + block], j[a : a + block]
+        diff = x.index_select(-2, ia).sub_(x.index_select(-2, ja))
+        d2[..., a : a + block] = diff.mul_(diff).sum(-1)
+    med = d2.kthvalue((d2.shape[-1] + 1) // 2, -1).values  # the lower median, as Tensor.median; faster
     h = med / math.log(n + 1)
     return torch.where(h > 0, h, torch.ones_like(h))
 
