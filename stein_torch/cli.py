@@ -172,7 +172,7 @@ def _run(args) -> int:
     _set_threads(args, default=None)
     import stein_torch as st
 
-    from .files import save_netcdf
+    from .io import save_netcdf
 
     model = Path(args.model)
     if not model.is_file():

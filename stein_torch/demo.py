@@ -29,7 +29,7 @@ import numpy as np
 import torch
 from torch.distributions import HalfNormal, LogNormal, Normal, constraints
 
-from .files import save_figure, save_netcdf
+from .io import save_figure, save_netcdf
 from .result import Result
 from .sample import sample
 from .target import Param, Target

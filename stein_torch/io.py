@@ -39,6 +39,8 @@ __all__ = [
     "load",
     "target_signature",
     "check_signature",
+    "save_netcdf",
+    "save_figure",
 ]
 
 CHECKPOINT_FORMAT = "stein_torch.checkpoint"
@@ -280,9 +282,7 @@ def save_result(result, path) -> None:
     """
     path = check_output_path(path, "path")
     if path.endswith(".nc"):
-        idata = result.to_inference_data()
-        with atomic_path(path) as tmp:
-            idata.to_netcdf(tmp)
+        save_netcdf(result.to_inference_data(), path)
         return
     state = {
         "format": RESULT_FORMAT,
@@ -334,3 +334,18 @@ def load(path, target):
     trace = {k: np.asarray(v) for k, v in obj["trace"].items()}
     settings = {**obj["settings"], "steps": obj["step"]}
     return Result(target, z, obj["lp"], trace, settings, obj.get("stop_reason", "checkpoint"))
+
+
+def save_netcdf(idata, path) -> str:
+    """Write an :class:`arviz.InferenceData` to ``path`` as NetCDF (h5netcdf engine), atomically."""
+    with atomic_path(path) as tmp:
+        idata.to_netcdf(tmp, engine="h5netcdf")
+    return str(path)
+
+
+def save_figure(figure, path, *, dpi: int = 110) -> str:
+    """Write a matplotlib figure to ``path`` as PNG, atomically."""
+    with atomic_path(path) as tmp:
+        figure.savefig(tmp, format="png", dpi=dpi, bbox_inches="tight")
+    return str(path)
+

@@ -17,7 +17,7 @@ with warnings.catch_warnings():
     import arviz as az
 from scipy import stats
 
-from stein_torch import files
+from stein_torch import io
 from stein_torch.cli import main
 from stein_torch.demo import DEMO_STEPS, demo_target, kiln_data, run_demo
 
@@ -253,12 +253,10 @@ def test_failed_write_leaves_the_old_file_and_no_temporary(tmp_path):
     destination = tmp_path / "posterior.nc"
     destination.write_bytes(b"previous result")
 
-    def broken_writer(path):
-        Path(path).write_bytes(b"half a file")
-        raise OSError("disk full")
-
     with pytest.raises(OSError, match="disk full"):
-        files._write_with(broken_writer, destination)
+        with io.atomic_path(destination) as tmp:
+            Path(tmp).write_bytes(b"half a file")
+            raise OSError("disk full")
     # atomic replace (POSIX rename(2) semantics): the old file is intact, no temporary remains
     assert destination.read_bytes() == b"previous result"
     assert [p.name for p in tmp_path.iterdir()] == ["posterior.nc"]
