@@ -1,0 +1,58 @@
+"""Default SVGD against the posteriordb reference posteriors, through the named-parameter interface.
+
+Floor (issue "Core engine"): with ``st.sample(target, particles=200, seed=0)`` and otherwise
+defaults, every parameter's mean within 0.1 reference sd and sd within 10% of the reference.
+Source: posteriordb reference posteriors (posteriordb, BSD-3), read from ../shared/posteriors/.
+Four run in the default suite (including eight_schools_noncentered and diamonds); the other four are
+marked slow.
+"""
+
+import pytest
+import torch
+
+import stein_torch as st
+
+from posteriordb import compare_moments, model, require_posteriors
+
+DEFAULT = [
+    "eight_schools-eight_schools_noncentered",
+    "diamonds-diamonds",
+    "kidiq-kidscore_momhsiq",
+    "arK-arK",
+]
+SLOW = [
+    "sblri-blr",
+    "low_dim_gauss_mix-low_dim_gauss_mix",
+    "garch-garch11",
+    "gp_pois_regr-gp_regr",
+]
+
+
+def named_target(name: str) -> st.Target:
+    m = model(name)
+    return st.Target(m.log_joint, params={k: st.Param(tuple(shape), c) for k, (shape, c) in m.params.items()})
+
+
+def _check(name: str):
+    require_posteriors()
+    run = st.sample(named_target(name), particles=200, seed=0)
+    draws = {k: v[0].numpy() for k, v in run.draws.items()}
+    table = compare_moments(model(name).derived(draws), name)
+    for param, row in table.items():
+        # posteriordb reference posterior <name> (posteriordb, BSD-3): mean and sd per parameter
+        assert row["mean_error"] <= 0.1, f"{name} {param}: mean off by {row['mean_error']:.3f} ref sd"
+        assert 0.9 <= row["sd_ratio_min"] and row["sd_ratio_max"] <= 1.1, (
+            f"{name} {param}: sd ratio {row['sd_ratio_min']:.3f}..{row['sd_ratio_max']:.3f}"
+        )
+    assert not any(torch.isnan(v).any() for v in run.draws.values())
+
+
+@pytest.mark.parametrize("name", DEFAULT)
+def test_default_run_matches_reference(name):
+    _check(name)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", SLOW)
+def test_default_run_matches_reference_slow(name):
+    _check(name)
