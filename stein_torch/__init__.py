@@ -8,6 +8,8 @@ torch.Size([1, 100, 2])
 """
 
 from . import kernels, steppers
+from .data import ObservedData
+from .predict import PredictiveBands, predictive_interval
 from .result import Result
 from .sample import Sampler, sample
 from .stein import ksd, svgd_direction
@@ -16,12 +18,15 @@ from .target import Param, Target
 __version__ = "0.1.0"
 
 __all__ = [
+    "ObservedData",
     "Param",
+    "PredictiveBands",
     "Result",
     "Sampler",
     "Target",
     "kernels",
     "ksd",
+    "predictive_interval",
     "sample",
     "steppers",
     "svgd_direction",
