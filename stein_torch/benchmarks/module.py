@@ -15,7 +15,7 @@ of median times, timed interleaved so machine load hits both paths alike. Floor 
 row; the exit status is 1 when it is missed. Measured on a shared 2-core machine (see docs/mod.md):
 the full-data row is compute-bound (the same 25 million tanh evaluations and matmuls on both paths,
 and batched matmuls are no faster per element than per-particle ones on CPU), so vmap gains about
-1-3x there; the minibatch row is overhead-bound and gains 8x or more.
+1.5-3x there; the minibatch row is overhead-bound and gains 8x or more.
 ``--quick`` takes fewer repeats.
 """
 
