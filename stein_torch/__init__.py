@@ -8,7 +8,9 @@ torch.Size([1, 100, 2])
 """
 
 from . import io, kernels, steppers
+from .data import ObservedData
 from .io import load
+from .predict import PredictiveBands, predictive_interval
 from .result import Result
 from .sample import Sampler, sample
 from .stein import ksd, svgd_direction
@@ -17,7 +19,9 @@ from .target import Param, Target
 __version__ = "0.1.0"
 
 __all__ = [
+    "ObservedData",
     "Param",
+    "PredictiveBands",
     "Result",
     "Sampler",
     "Target",
@@ -25,6 +29,7 @@ __all__ = [
     "kernels",
     "ksd",
     "load",
+    "predictive_interval",
     "sample",
     "steppers",
     "svgd_direction",

@@ -53,6 +53,7 @@ class Result:
         self.stop_reason = stop_reason
         self.sample_stats = dict(sample_stats or {})
         self._draws = None
+        self._likelihood = None
 
     @property
     def draws(self) -> dict[str, torch.Tensor]:
@@ -72,8 +73,11 @@ class Result:
 
         Groups: ``posterior`` (one variable per parameter, dims chain, draw, *shape; for SVGD
         chain = ensemble, draw = particle), ``sample_stats`` (``lp`` per draw and any statistics of
-        the sampler), attrs with the library name, version and settings. Extra groups (e.g.
-        ``observed_data``) may be passed as keyword arguments of :func:`arviz.from_dict`.
+        the sampler), attrs with the library name, version and settings. For targets with data:
+        ``log_likelihood`` (per-observation terms on the full data, dims chain, draw, obs: what
+        :func:`arviz.loo` and :func:`arviz.compare` read), ``observed_data`` and ``constant_data``.
+        ``predictions=`` takes :meth:`predict` outputs (chains, draws, n, ...) or a dict of them.
+        Other groups may be passed as keyword arguments of :func:`arviz.from_dict`.
 
         Notes
         -----
@@ -90,10 +94,33 @@ class Result:
         attrs = {"inference_library": "stein_torch", "inference_library_version": __version__}
         attrs.update({k: _attr_value(v) for k, v in self.settings.items()})
         attrs["stop_reason"] = self.stop_reason
+        if getattr(self.target, "data", None) is not None:
+            from .data import likelihood_groups
+
+            if self._likelihood is None:  # pointwise terms on the full data, computed once
+                self._likelihood = likelihood_groups(self.target, self.particles)
+            for group, values in self._likelihood["groups"].items():
+                groups.setdefault(group, values)
+            dims.update({k: v for k, v in self._likelihood["dims"].items() if k not in dims})
+        if groups.get("predictions") is not None and "pred_dims" not in groups:
+            from .predict import predictions_group
+
+            groups["predictions"], groups["pred_dims"] = predictions_group(self, groups["predictions"])
         return az.from_dict(
             posterior=posterior, sample_stats=stats, dims=dims, attrs=attrs, posterior_attrs=attrs,
             sample_stats_attrs=attrs, **groups,
         )
+
+    def predict(self, inputs, *, predictive=None) -> torch.Tensor:
+        """Outputs of every particle on ``inputs``, shape (chains, draws, n, ...).
+
+        Module targets predict with the network; other targets need ``predictive=fn`` (on the
+        target or here), ``fn(p, inputs) -> (*batch, n, ...)``. See
+        :func:`stein_torch.predictive_interval` for the posterior predictive mean and bands.
+        """
+        from .predict import predict
+
+        return predict(self, inputs, predictive)
 
     def summary(self, **kwargs):
         """Posterior summary by :func:`arviz.summary` (a pandas DataFrame).

@@ -114,6 +114,15 @@ class Sampler:
         if not isinstance(target, Target):
             raise TypeError(f"target must be a stein_torch.Target, got {type(target).__qualname__}")
         self.target = target
+        hints = getattr(target, "sampler_hints", {})  # a target's preferred settings (e.g. module targets)
+        if init is None:
+            init = hints.get("init")
+        if kernel is None and "kernel" in hints:
+            kernel = hints["kernel"]()
+        if stepper is None and "stepper" in hints:
+            stepper = hints["stepper"]()
+        if precondition == "auto":
+            precondition = hints.get("precondition", "auto")
         self.n = _check_count(particles, "particles")
         self.ensembles = _check_count(ensembles, "ensembles")
         if kernel is not None and not isinstance(kernel, Kernel):
@@ -139,6 +148,8 @@ class Sampler:
                 raise ValueError(f"seed == {seed}, must be < 2**64")
         self.seed = int(seed) if seed is not None else int(torch.seed() % (2**63))
         self.generator = torch.Generator().manual_seed(self.seed)
+        if getattr(target, "data", None) is not None:  # minibatch shuffles: their own stream from the seed
+            target.data.start(torch.Generator().manual_seed(self.seed + 1))
         self.init = init
         self.step_count = 0
         self.grad_evals = 0
@@ -282,6 +293,13 @@ class Sampler:
     # ------------------------------------------------------------------ stepping
     def step(self) -> None:
         """One SVGD step with fault containment (reject and shrink the step of faulty particles)."""
+        data = getattr(self.target, "data", None)
+        if data is None or data.batch_size is None:
+            return self._step()
+        with data.next_batch():  # scores of this step on the next minibatch (stochastic SVGD)
+            self._step()
+
+    def _step(self) -> None:
         phi = self.direction(self.u, self.score, self.lp)
         u_new = self.stepper.step(self.u, phi, self._velocity)
         lp, score, bad = self._evaluate(u_new)
@@ -426,6 +444,12 @@ class Sampler:
     def result(self) -> Result:
         """The current particles as a :class:`Result`."""
         z = self.affine.to_z(self.u).detach()
+        lp = self.lp.detach().clone()
+        data = getattr(self.target, "data", None)
+        if data is not None and data.batch_size is not None:  # report the full-data log density
+            from .data import full_log_prob
+
+            lp = full_log_prob(self.target, z)
         trace = {k: np.asarray(v) for k, v in self._trace.items()}
         settings = {
             "method": "svgd",
@@ -439,7 +463,9 @@ class Sampler:
             "dtype": str(self.dtype).replace("torch.", ""),
             "grad_evals": self.grad_evals,
         }
-        return Result(self.target, z, self.lp.detach().clone(), trace, settings, getattr(self, "stop_reason", "steps"))
+        if data is not None:
+            settings["batch_size"] = str(data.batch_size)
+        return Result(self.target, z, lp, trace, settings, getattr(self, "stop_reason", "steps"))
 
 
 def _bandwidth(kernel) -> float | None:
@@ -481,7 +507,8 @@ def sample(
         Number of SVGD steps.
     kernel : Kernel, optional
         Default ``IMQ() + Linear(radius=2.0)`` (median-heuristic bandwidth, moment-matching
-        linear part); see :func:`default_kernel`.
+        linear part; see :func:`default_kernel`), or the target's preferred kernel (module
+        targets: ``RBF()``).
     stepper : Stepper or callable, optional
         A :mod:`torch.optim` factory such as ``functools.partial(torch.optim.Adam, lr=0.05)``, or a
         :class:`~stein_torch.steppers.Stepper`. Default: gradient steps of 0.1 in whitened
@@ -501,6 +528,8 @@ def sample(
         from that Laplace approximation; then re-whiten by the particles' own mean and covariance
         (per ensemble) at steps 25, 50, 100, 200, ... "covariance": the re-whitening only.
         "auto": "laplace" up to 1000 coordinates, "covariance" above. None: plain coordinates.
+        A target's own preference wins under "auto" (module targets: None); ``init=None`` likewise
+        takes the target's preferred start (module targets: "prior", fresh layer initialisations).
     progress : bool, optional
         Show a tqdm bar (step, mean log density, step size); default on when stderr is a terminal.
     seed : int, optional

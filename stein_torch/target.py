@@ -103,10 +103,26 @@ class Target:
     initial : callable, optional
         ``initial(n, generator) -> dict`` drawing ``n`` constrained starting values per name;
         enables ``init="prior"`` in :func:`stein_torch.sample`.
+    log_likelihood : callable, optional
+        ``log_likelihood(p, data) -> (*batch, n_obs)``: one log-likelihood term per observation
+        (``p`` as for ``log_prob``, ``data`` a dict of tensors (n_obs, ...) or a minibatch of them).
+        Then ``log_prob`` is the log prior and the target is ``log_prob(p) + sum of the terms``;
+        the terms fill the ``log_likelihood`` group of the InferenceData (for :func:`arviz.loo`).
+    data : dict of str to Tensor, optional
+        The observations and covariates, each of shape (n_obs, ...); needed with ``log_likelihood``.
+    batch_size : int, optional
+        Score the likelihood on random minibatches of this size, scaled by n_obs / batch_size
+        (stochastic SVGD, reshuffled each epoch, shuffles from the sampler's seed). Default: full data.
+    observed : str or list of str, optional
+        Keys of ``data`` that are observations (``observed_data`` group); the others are covariates
+        (``constant_data``).
+    predictive : callable, optional
+        ``predictive(p, inputs) -> (*batch, n, ...)``, used by :meth:`Result.predict`.
 
     See Also
     --------
     Target.from_priors : build a target from prior distributions and a log likelihood.
+    Target.from_module : a Bayesian neural network from a :class:`torch.nn.Module`.
     """
 
     def __init__(
@@ -117,6 +133,11 @@ class Target:
         *,
         constraint: constraints.Constraint = constraints.real,
         initial: Callable | None = None,
+        log_likelihood: Callable | None = None,
+        data: Mapping | None = None,
+        batch_size: int | None = None,
+        observed=None,
+        predictive: Callable | None = None,
     ):
         if not callable(log_prob):
             raise TypeError(f"Target: log_prob must be callable, got {type(log_prob).__qualname__}")
@@ -143,11 +164,33 @@ class Target:
         self._user_fn = log_prob
         self._fn = log_prob
         self._mode = None  # "batched" | "vmap" | "loop", decided on first use
+        self.data, self.log_likelihood = None, log_likelihood
+        self.predictive = predictive
+        self.sampler_hints: dict = {}  # preferred sampler settings, e.g. {"init": ..., "precondition": ...}
+        if predictive is not None and not callable(predictive):
+            raise TypeError(f"Target: predictive must be callable, got {type(predictive).__qualname__}")
+        if log_likelihood is not None or data is not None:
+            from .data import ObservedData, with_likelihood
+
+            if log_likelihood is None or data is None:
+                raise ValueError("Target: log_likelihood= and data= go together; got only one of them")
+            if not callable(log_likelihood):
+                raise TypeError(f"Target: log_likelihood must be callable, got {type(log_likelihood).__qualname__}")
+            self.data = ObservedData(data, batch_size, observed)
+            self._user_fn = with_likelihood(log_prob, log_likelihood, self.data)
+        elif batch_size is not None or observed is not None:
+            raise ValueError("Target: batch_size= and observed= need log_likelihood= and data=")
 
     # ------------------------------------------------------------------ construction helpers
     @classmethod
     def from_priors(
-        cls, priors: Mapping[str, Distribution], log_likelihood: Callable | None = None
+        cls,
+        priors: Mapping[str, Distribution],
+        log_likelihood: Callable | None = None,
+        *,
+        data: Mapping | None = None,
+        batch_size: int | None = None,
+        observed=None,
     ) -> "Target":
         """Build a target from prior distributions and a log likelihood.
 
@@ -158,7 +201,10 @@ class Target:
             ``batch_shape + event_shape`` the parameter's shape; its samples can start the particles
             (``init="prior"``).
         log_likelihood : callable, optional
-            ``log_likelihood(p) -> (...)`` for a dict of constrained values with leading batch dims.
+            ``log_likelihood(p) -> (...)`` for a dict of constrained values with leading batch dims;
+            with ``data``, ``log_likelihood(p, data) -> (..., n_obs)`` per observation.
+        data, batch_size, observed
+            As in :class:`Target`.
         """
         if not isinstance(priors, Mapping) or not priors:
             raise TypeError("Target.from_priors: priors must be a non-empty dict of name -> Distribution")
@@ -181,14 +227,30 @@ class Target:
                 if d.batch_shape:
                     lp = lp.flatten(lp.dim() - len(d.batch_shape)).sum(-1)
                 total = total + lp
-            return total if log_likelihood is None else total + log_likelihood(p)
+            return total if log_likelihood is None or data is not None else total + log_likelihood(p)
 
         def initial(n, generator):
             with torch.random.fork_rng():
                 torch.manual_seed(int(torch.randint(2**62, (), generator=generator)))
                 return {name: d.sample((n,)) for name, d in priors.items()}
 
-        return cls(log_joint, params=params, initial=initial)
+        if data is None:
+            return cls(log_joint, params=params, initial=initial)
+        return cls(
+            log_joint, params=params, initial=initial, log_likelihood=log_likelihood, data=data,
+            batch_size=batch_size, observed=observed,
+        )
+
+    @classmethod
+    def from_module(cls, module, *, prior, likelihood: Callable, data, batch_size: int | None = None, **options):
+        """A Bayesian neural network: particles are stacked copies of ``module``'s parameters.
+
+        Evaluated with :func:`torch.func.functional_call` under :func:`torch.func.vmap` (no loop
+        over particles). See :func:`stein_torch.module.module_target` for the parameters.
+        """
+        from .module import module_target
+
+        return module_target(cls, module, prior=prior, likelihood=likelihood, data=data, batch_size=batch_size, **options)
 
     # ------------------------------------------------------------------ coordinates
     @property

@@ -1,0 +1,282 @@
+"""Observed data on a target: per-observation log-likelihood terms, minibatches, pointwise values.
+
+A target with data has the log density
+
+    log p(theta | data) = log prior(theta) + sum_i l_i(theta),   i = 1..n_obs,
+
+where the user's ``log_likelihood(p, data)`` returns the terms l_i with shape (*batch, n_obs). With a
+``batch_size`` the sampler scores a random minibatch B and scales its sum by n_obs / |B|, an unbiased
+estimate of the full sum (minibatch score, "Stein Variational Gradient Descent: A General Purpose
+Bayesian Inference Algorithm", arXiv:1608.04471). Minibatches are consecutive slices of a random
+permutation of the observations, reshuffled at every epoch (the short tail of an epoch is dropped, so
+every minibatch is a uniform random subset and the estimate stays unbiased); the shuffles come from
+the sampler's generator, so a seeded run repeats its minibatches.
+
+The same terms, evaluated on the full data in chunks at the end of a run, fill the ``log_likelihood``
+group of the InferenceData (what :func:`arviz.loo` and :func:`arviz.compare` read).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import numbers
+from typing import Callable, Mapping
+
+import numpy as np
+import torch
+
+__all__ = ["ObservedData", "with_likelihood", "pointwise_log_likelihood", "full_log_prob", "likelihood_groups"]
+
+POINTWISE_ELEMENTS = 2**20  # particles x observations per chunk of the pointwise log-likelihood
+
+
+class ObservedData:
+    """Data tensors that share their first axis (the observations), with an optional minibatch stream.
+
+    Parameters
+    ----------
+    data : dict of str to Tensor or array
+        Each value has shape (n_obs, ...); all share the same ``n_obs``. Floating data are cast to
+        the particles' dtype when used; integer data (class labels, counts) are kept as they are.
+    batch_size : int, optional
+        Minibatch size for stochastic scores; None (default) uses the full data at every step.
+    observed : str or sequence of str, optional
+        Keys that are observations (``observed_data`` group); the other keys are covariates
+        (``constant_data`` group). Default: none are marked, all go to ``constant_data``.
+
+    Attributes
+    ----------
+    n_obs : int
+    indices : Tensor of shape (batch_size,) or None
+        The current minibatch, None when the full data are in use.
+    """
+
+    def __init__(self, data: Mapping, batch_size: int | None = None, observed=None):
+        if not isinstance(data, Mapping) or not data:
+            raise TypeError(
+                f"data must be a non-empty dict of name -> tensor of shape (n_obs, ...), got {type(data).__qualname__}"
+            )
+        tensors = {}
+        for key, value in data.items():
+            if not isinstance(key, str) or not key.isidentifier():
+                raise ValueError(f"data: keys must be identifiers (they become ArviZ variable names), got {key!r}")
+            try:
+                tensor = torch.as_tensor(value)
+            except Exception:
+                raise TypeError(
+                    f"data[{key!r}]: expected a tensor or array of shape (n_obs, ...), got {type(value).__qualname__}"
+                ) from None
+            if tensor.dim() == 0:
+                raise ValueError(f"data[{key!r}]: expected shape (n_obs, ...), got a scalar; wrap it as shape (1,)")
+            if tensor.is_complex():
+                raise TypeError(f"data[{key!r}]: complex data are not supported")
+            tensors[key] = tensor.detach()
+        lengths = {key: t.shape[0] for key, t in tensors.items()}
+        if len(set(lengths.values())) != 1:
+            listed = ", ".join(f"{k!r}: {n}" for k, n in lengths.items())
+            raise ValueError(
+                f"data: every tensor needs the same length along the observation axis (axis 0); got {listed}"
+            )
+        self.tensors = tensors
+        self.n_obs = next(iter(lengths.values()))
+        if self.n_obs < 1:
+            raise ValueError("data: the observation axis is empty (n_obs == 0)")
+        if batch_size is not None:
+            if isinstance(batch_size, bool) or not isinstance(batch_size, numbers.Integral):
+                raise TypeError(f"batch_size must be an int or None, got {type(batch_size).__qualname__}")
+            if not 1 <= batch_size <= self.n_obs:
+                raise ValueError(f"batch_size == {batch_size}, must be between 1 and n_obs = {self.n_obs}")
+            batch_size = int(batch_size)
+        self.batch_size = batch_size
+        observed = [observed] if isinstance(observed, str) else list(observed or [])
+        unknown = [k for k in observed if k not in tensors]
+        if unknown:
+            raise ValueError(f"observed: {unknown} are not keys of data (keys: {list(tensors)})")
+        self.observed = observed
+        self.indices: torch.Tensor | None = None
+        self._generator: torch.Generator | None = None
+        self._order: torch.Tensor | None = None
+        self._position = 0
+        self.epoch = 0
+        self._cast: dict = {}
+
+    # ------------------------------------------------------------------ minibatch stream
+    def start(self, generator: torch.Generator) -> None:
+        """Begin a fresh minibatch stream whose shuffles come from ``generator``."""
+        self._generator = generator
+        self._order, self._position, self.epoch = None, 0, 0
+        self.indices = None
+
+    def advance(self) -> None:
+        """Move to the next minibatch (no-op without ``batch_size``); reshuffle at each epoch end."""
+        if self.batch_size is None:
+            return
+        if self._generator is None:
+            self._generator = torch.Generator().manual_seed(0)
+        if self._order is None or self._position + self.batch_size > self.n_obs:
+            self._order = torch.randperm(self.n_obs, generator=self._generator)
+            self._position = 0
+            self.epoch += 1
+        self.indices = self._order[self._position : self._position + self.batch_size]
+        self._position += self.batch_size
+
+    @contextlib.contextmanager
+    def next_batch(self):
+        """Context of one sampler step: the next minibatch in use, the full data again on exit."""
+        self.advance()
+        try:
+            yield self
+        finally:
+            self.indices = None
+
+    @contextlib.contextmanager
+    def full(self):
+        """Context in which the full data are used (mode finding, final log density, LOO)."""
+        saved, self.indices = self.indices, None
+        try:
+            yield self
+        finally:
+            self.indices = saved
+
+    # ------------------------------------------------------------------ access
+    def current(self, dtype: torch.dtype, device=None) -> tuple[dict, float]:
+        """The data in use (current minibatch or all) cast to ``dtype``, and the scale n_obs / |batch|."""
+        full = self.cast(dtype, device)
+        if self.indices is None:
+            return full, 1.0
+        idx = self.indices.to(next(iter(full.values())).device)
+        return {k: v[idx] for k, v in full.items()}, self.n_obs / idx.numel()
+
+    def cast(self, dtype: torch.dtype, device=None) -> dict:
+        """All data with floating tensors in ``dtype`` (cached per dtype and device)."""
+        key = (dtype, str(device))
+        if key not in self._cast:
+            self._cast[key] = {
+                k: (v.to(dtype) if v.is_floating_point() else v).to(device if device is not None else v.device)
+                for k, v in self.tensors.items()
+            }
+        return self._cast[key]
+
+    def slice(self, start: int, stop: int, dtype: torch.dtype, device=None) -> dict:
+        """Observations start..stop-1 of every tensor, floating ones in ``dtype``."""
+        return {k: v[start:stop] for k, v in self.cast(dtype, device).items()}
+
+    def groups(self) -> tuple[dict, dict]:
+        """``observed_data`` and ``constant_data`` as numpy arrays, keyed by name."""
+        observed = {k: v.cpu().numpy() for k, v in self.tensors.items() if k in self.observed}
+        constant = {k: v.cpu().numpy() for k, v in self.tensors.items() if k not in self.observed}
+        return observed, constant
+
+    def __repr__(self) -> str:
+        shapes = ", ".join(f"{k}: {tuple(v.shape)}" for k, v in self.tensors.items())
+        return f"ObservedData({shapes}, batch_size={self.batch_size})"
+
+
+def _dtype_of(arg) -> tuple[torch.dtype, torch.device]:
+    first = arg if isinstance(arg, torch.Tensor) else next(iter(arg.values()))
+    return first.dtype, first.device
+
+
+def _check_terms(terms, n: int) -> torch.Tensor:
+    if not isinstance(terms, torch.Tensor):
+        raise TypeError(f"log_likelihood must return a torch.Tensor, got {type(terms).__qualname__}")
+    if terms.dim() == 0 or terms.shape[-1] != n:
+        raise ValueError(
+            f"log_likelihood returned shape {tuple(terms.shape)} for {n} observations; it must return one "
+            "term per observation, shape (*batch, n_obs)"
+        )
+    return terms
+
+
+def with_likelihood(log_prior: Callable, log_likelihood: Callable, data: ObservedData) -> Callable:
+    """The joint log density ``log_prior(p) + scale * log_likelihood(p, batch).sum(-1)``.
+
+    Written so that it is batched when both user functions are, and vmappable when they are written
+    for one parameter value (then ``log_likelihood`` returns shape (n_obs,)).
+    """
+
+    def log_joint(arg):
+        dtype, device = _dtype_of(arg)
+        batch, scale = data.current(dtype, device)
+        n = next(iter(batch.values())).shape[0]
+        terms = _check_terms(log_likelihood(arg, batch), n)
+        return log_prior(arg) + scale * terms.sum(-1)
+
+    return log_joint
+
+
+def _pointwise_chunk(log_likelihood: Callable, arg, batch: dict, n_particles: int, n: int) -> torch.Tensor:
+    """Terms (n_particles, n) for a flat batch of particles, batched call first, vmap if needed."""
+    try:
+        terms = log_likelihood(arg, batch)
+        if isinstance(terms, torch.Tensor) and tuple(terms.shape) == (n_particles, n):
+            return terms
+    except Exception:
+        pass
+    terms = torch.func.vmap(lambda a: log_likelihood(a, batch))(arg)
+    return _check_terms(terms, n)
+
+
+def pointwise_log_likelihood(target, z: torch.Tensor, max_elements: int = POINTWISE_ELEMENTS) -> np.ndarray:
+    """Per-observation log-likelihood on the full data for particles ``z`` (..., dim), in chunks.
+
+    Parameters
+    ----------
+    target : Target
+        A target built with ``log_likelihood=`` and ``data=``.
+    z : Tensor of shape (..., dim)
+        Unconstrained particles.
+    max_elements : int
+        Particles x observations evaluated at once (bounds the memory).
+
+    Returns
+    -------
+    ndarray of shape (..., n_obs)
+    """
+    data: ObservedData = target.data
+    batch_shape = z.shape[:-1]
+    flat = z.reshape(-1, z.shape[-1])
+    n_particles, n_obs = flat.shape[0], data.n_obs
+    obs_chunk = max(1, min(n_obs, max_elements))
+    particle_chunk = max(1, max_elements // obs_chunk)
+    out = torch.empty(n_particles, n_obs, dtype=z.dtype)
+    with torch.no_grad():
+        for p0 in range(0, n_particles, particle_chunk):
+            values, _ = target.constrain(flat[p0 : p0 + particle_chunk])
+            arg = values["x"] if target.flat else values
+            m = next(iter(values.values())).shape[0]
+            for o0 in range(0, n_obs, obs_chunk):
+                o1 = min(n_obs, o0 + obs_chunk)
+                batch = data.slice(o0, o1, z.dtype, z.device)
+                out[p0 : p0 + m, o0:o1] = _pointwise_chunk(target.log_likelihood, arg, batch, m, o1 - o0).cpu()
+    return out.reshape(*batch_shape, n_obs).numpy()
+
+
+def full_log_prob(target, z: torch.Tensor, max_elements: int = POINTWISE_ELEMENTS) -> torch.Tensor:
+    """Log density (...) of particles z (..., dim) on the full data, in chunks of particles."""
+    flat = z.reshape(-1, z.shape[-1])
+    chunk = max(1, max_elements // target.data.n_obs)
+    with torch.no_grad(), target.data.full():
+        parts = [target.log_prob(flat[i : i + chunk]) for i in range(0, flat.shape[0], chunk)]
+    return torch.cat(parts).reshape(z.shape[:-1])
+
+
+def likelihood_groups(target, z: torch.Tensor) -> dict:
+    """The ``log_likelihood``, ``observed_data`` and ``constant_data`` groups and their dims."""
+    data: ObservedData = target.data
+    observed, constant = data.groups()
+    if len(observed) == 1 and next(iter(observed.values())).ndim == 1:
+        name = next(iter(observed))  # same name as the observation: what arviz.loo_pit and plots expect
+    else:
+        name = "log_lik" if "log_lik" not in data.tensors else "log_lik_"
+    values = pointwise_log_likelihood(target, z)
+    dims = {name: ["obs"]}
+    for group in (observed, constant):
+        for k, v in group.items():
+            dims[k] = ["obs"] + [f"{k}_dim_{i}" for i in range(1, v.ndim)]  # (obs, ...)
+    groups = {"log_likelihood": {name: values}}
+    if observed:
+        groups["observed_data"] = observed
+    if constant:
+        groups["constant_data"] = constant
+    return {"groups": groups, "dims": dims}
