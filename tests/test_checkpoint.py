@@ -91,8 +91,10 @@ def test_periodic_checkpoints_continue_the_same_run(tmp_path):
 
 
 def test_generator_and_optimizer_state_are_part_of_the_resume(tmp_path):
-    # 260 particles: the median heuristic then uses random pairs drawn from the sampler's generator
-    big = dict(particles=260, seed=8, precondition=None)
+    # 260 particles: the median heuristic then uses random pairs drawn from the sampler's generator;
+    # Adam: a step rule with moments (the default gradient step keeps no state)
+    adam = functools.partial(torch.optim.Adam, lr=0.05)
+    big = dict(particles=260, seed=8, precondition=None, stepper=adam)
     target = st.Target(lambda x: -0.5 * (x**2 / torch.tensor([1.0, 4.0], dtype=x.dtype)).sum(-1), dim=2)
     full = st.sample(target, steps=6, **big)
     path = tmp_path / "run.pt"
