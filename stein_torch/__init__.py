@@ -7,7 +7,7 @@
 torch.Size([1, 100, 2])
 """
 
-from . import kernels, steppers
+from . import kernels, schedules, steppers
 from .result import Result
 from .sample import Sampler, sample
 from .stein import ksd, svgd_direction
@@ -23,6 +23,7 @@ __all__ = [
     "kernels",
     "ksd",
     "sample",
+    "schedules",
     "steppers",
     "svgd_direction",
     "__version__",

@@ -17,6 +17,7 @@ import torch
 from .kernels import RBF, Kernel, Linear
 from .precondition import Affine, default_start, find_mode, laplace_affine
 from .result import Result
+from .schedules import as_drive
 from .stein import svgd_direction
 from .steppers import Stepper, as_stepper
 from .target import Target
@@ -65,6 +66,7 @@ class Sampler:
         precondition: str | None = "auto",
         seed: int | None = None,
         device=None,
+        anneal=None,
     ):
         if not isinstance(target, Target):
             raise TypeError(f"target must be a stein_torch.Target, got {type(target).__qualname__}")
@@ -91,7 +93,9 @@ class Sampler:
         self.init = init
         self.step_count = 0
         self.grad_evals = 0
-        self.drive: Callable[[int], float] = lambda step: 1.0
+        self.anneal = anneal
+        self.drive: Callable[[int], float] = as_drive(anneal)
+        self._last_velocity_eval = None  # (u, lp, score, bad) of the latest velocity call
         self._trace: dict[str, list] = {}
         self._fault_streak = 0
         self._setup()
@@ -194,15 +198,22 @@ class Sampler:
 
     def _velocity(self, u):
         lp, score, bad = self._evaluate(u)
+        self._last_velocity_eval = (u, lp, score, bad)
         phi = self.direction(u, score, lp)
         return torch.where(bad[..., None], torch.full_like(phi, float("nan")), phi)
 
     # ------------------------------------------------------------------ stepping
     def step(self) -> None:
         """One SVGD step with fault containment (reject and shrink the step of faulty particles)."""
+        drive = self.drive(self.step_count)
         phi = self.direction(self.u, self.score, self.lp)
+        self._last_velocity_eval = None
         u_new = self.stepper.step(self.u, phi, self._velocity)
-        lp, score, bad = self._evaluate(u_new)
+        cached, self._last_velocity_eval = self._last_velocity_eval, None
+        if cached is not None and cached[0] is u_new:  # multi-stage steppers end on the new point
+            lp, score, bad = (t.clone() for t in cached[1:])
+        else:
+            lp, score, bad = self._evaluate(u_new)
         faults = int(bad.sum())
         for _ in range(MAX_BACKTRACK):
             if not bad.any():
@@ -225,7 +236,7 @@ class Sampler:
             )
         self.u, self.lp, self.score = u_new, lp, score
         self.step_count += 1
-        self._record(phi=phi, faults=faults)
+        self._record(phi=phi, faults=faults, drive=drive)
 
     def _record(self, **figures):
         row = {
@@ -234,7 +245,11 @@ class Sampler:
             "phi_rms": float(figures["phi"].pow(2).mean().sqrt()),
             "faults": figures["faults"],
             "grad_evals": self.grad_evals,
+            "drive": figures["drive"],
         }
+        info = getattr(self.stepper, "last_info", None)  # e.g. Adaptive: rejections, error
+        if isinstance(info, dict):
+            row.update({k: v for k, v in info.items() if k not in row})
         h = _bandwidth(self.kernel)
         if h is not None:
             row["bandwidth"] = h
@@ -273,6 +288,7 @@ class Sampler:
             "seed": self.seed,
             "dtype": str(self.dtype).replace("torch.", ""),
             "grad_evals": self.grad_evals,
+            "anneal": repr(self.anneal),
         }
         return Result(self.target, z, self.lp.detach().clone(), trace, settings, getattr(self, "stop_reason", "steps"))
 
@@ -300,6 +316,7 @@ def sample(
     progress: bool | None = None,
     seed: int | None = None,
     device=None,
+    anneal=None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
 
@@ -333,6 +350,10 @@ def sample(
         Show a tqdm bar (step, mean log density, step size); default on when stderr is a terminal.
     seed : int, optional
         Same seed, same draws.
+    anneal : callable, optional
+        Annealing schedule ``step -> drive`` in [0, 1] scaling the score term of the update, e.g.
+        ``st.schedules.linear(300)`` or ``st.schedules.cyclical(4, 100)``; for multimodal targets
+        (see :mod:`stein_torch.schedules`; combine with ``precondition=None`` and a broad ``init``).
 
     Returns
     -------
@@ -342,7 +363,7 @@ def sample(
     """
     sampler = Sampler(
         target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
-        precondition=precondition, seed=seed, device=device,
+        precondition=precondition, seed=seed, device=device, anneal=anneal,
     )
     return sampler.run(steps, progress=progress).result()
 
