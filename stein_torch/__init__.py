@@ -7,7 +7,7 @@
 torch.Size([1, 100, 2])
 """
 
-from . import io, kernels, steppers
+from . import io, kernels, schedules, steppers
 from .data import ObservedData
 from .io import load
 from .predict import PredictiveBands, predictive_interval
@@ -31,6 +31,7 @@ __all__ = [
     "load",
     "predictive_interval",
     "sample",
+    "schedules",
     "steppers",
     "svgd_direction",
     "__version__",

@@ -12,7 +12,18 @@ kernel                  profile f(s)                               note
 ``Matern(nu)``          Matérn 1/2, 3/2, 5/2 in t = sqrt(2 nu s)   rough for small nu
 ``GammaExponential(g)`` exp(-s^(g/2)), 0 < g <= 2                  g = 2 is the RBF
 ``Linear()``            x~ . y~ + 1 on standardised coordinates    fixes first two moments
+``TargetWeighted(k)``   k(x, y) / sqrt(p(x) p(y))                  see :mod:`.weighted`
 ======================  =========================================  ==========================
+
+Non-smooth profiles (gamma-exponential with gamma < 2, Matérn 1/2) have f'(s) unbounded at s = 0.
+The self-pair has zero displacement and contributes nothing. For other pairs the SVGD term
+(2/h) f'(s) (x_j - x_i) has magnitude m(s) = 2 |f'(s)| sqrt(s / h): bounded for gamma >= 1 (the
+Laplace/Matérn-1/2 case), unbounded as s -> 0 for gamma < 1. :meth:`RadialKernel.profile` of a
+``singular`` kernel therefore returns a *guarded* f': below ``GUARD`` the magnitude is held at
+min(m(s), m(GUARD)), the direction x_j - x_i untouched (so no pair is pushed sideways and the sum
+over pairs stays antisymmetric), and below a numerical floor (where s from matmul distances has no
+correct digits) the term shrinks linearly to 0 like a smooth kernel's. :meth:`exact_profile` gives
+the unguarded values.
 
 Kernels add: ``RBF() + Linear()``. The bandwidth is ``"median"`` (median heuristic,
 h = med |x_i - x_j|^2 / log(N + 1), "Stein Variational Gradient Descent", arXiv:1608.04471) or a
@@ -26,10 +37,13 @@ import numbers
 
 import torch
 
-__all__ = ["Kernel", "RadialKernel", "RBF", "IMQ", "Matern", "GammaExponential", "Linear", "Sum"]
+__all__ = [
+    "Kernel", "RadialKernel", "RBF", "IMQ", "Matern", "GammaExponential", "Linear", "Sum", "TargetWeighted",
+]
 
 MEDIAN_PAIRS = 1 << 12  # pairs used by the median heuristic (relative error ~1-4%); all pairs when fewer exist
 MEDIAN_BLOCK = 1 << 16  # entries of the (pairs, d) differences formed at once by the median heuristic
+GUARD = 1e-4  # scaled squared distance below which singular kernels cap the pairwise term (r = 0.01 sqrt(h))
 
 
 class Kernel:
@@ -123,9 +137,31 @@ class RadialKernel(Kernel):
         self.bandwidth = _check_bandwidth(bandwidth, type(self).__name__)
         self.last_bandwidth = None  # (batch,) tensor of the bandwidth used by the last update
 
-    def profile(self, s: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """Return f(s) and f'(s), elementwise."""
+    def exact_profile(self, s: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Return f(s) and f'(s), elementwise, in closed form (f' may be infinite at s = 0)."""
         raise NotImplementedError
+
+    def profile(self, s: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Return f(s) and the f'(s) used by the SVGD update, elementwise.
+
+        Equal to :meth:`exact_profile` for s >= ``GUARD``. For ``singular`` kernels and s < GUARD,
+        |f'| is lowered to min(|f'(s)|, |f'(GUARD)| sqrt(GUARD / s)), so that the pairwise term
+        2 |f'| sqrt(s / h) never exceeds its value at GUARD; s is floored at
+        max(GUARD 1e-8, 100 eps) first, which keeps f' finite (the term then vanishes linearly at
+        coincident points), and f is taken as f(0) below that floor, where s is rounding noise.
+        f' keeps its sign, so each pair's term keeps its direction.
+        """
+        if not self.singular:
+            return self.exact_profile(s)
+        floor = max(GUARD * 1e-8, 100 * torch.finfo(s.dtype).eps)
+        # below the floor s is rounding noise of the matmul distances (self-pairs come out ~1e-16, not
+        # 0); fractional powers would amplify it (s^(1/4) = 1e-4), so f is taken at s = 0 there
+        f = self.exact_profile(torch.where(s < floor, torch.zeros_like(s), s))[0]
+        s_eff = s.clamp_min(floor)
+        g = self.exact_profile(s_eff)[1]
+        g_guard = self.exact_profile(torch.tensor(GUARD, dtype=s.dtype, device=s.device))[1]
+        capped = torch.maximum(g, g_guard * (GUARD / s_eff).sqrt())  # both negative: max = smaller |.|
+        return f, torch.where(s < GUARD, capped, g)
 
     def curvature(self, s: torch.Tensor) -> torch.Tensor:
         """Return f''(s), elementwise."""
@@ -174,7 +210,7 @@ class RadialKernel(Kernel):
 class RBF(RadialKernel):
     """Squared-exponential kernel exp(-|x - y|^2 / h)."""
 
-    def profile(self, s):
+    def exact_profile(self, s):
         f = torch.exp(-s)
         return f, -f
 
@@ -197,7 +233,7 @@ class IMQ(RadialKernel):
             raise ValueError(f"IMQ: beta must lie in (-1, 0), got {beta!r}")
         self.c, self.beta = float(c), float(beta)
 
-    def profile(self, s):
+    def exact_profile(self, s):
         base = self.c**2 + s
         f = base.pow(self.beta)
         return f, self.beta * f / base
@@ -216,18 +252,23 @@ class IMQ(RadialKernel):
 class Matern(RadialKernel):
     """Matérn kernel with smoothness nu in {0.5, 1.5, 2.5}, in t = sqrt(2 nu s) = sqrt(2 nu) r / sqrt(h).
 
-    Same as scikit-learn's ``Matern(length_scale=sqrt(h), nu=nu)``. For nu = 1/2, f' is unbounded at
-    s = 0; the self-pair contributes nothing to the update (its displacement is zero).
+    Same as scikit-learn's ``Matern(length_scale=sqrt(h), nu=nu)`` (handbook: "Gaussian Processes for
+    Machine Learning", ch. 4, eq. 4.16-4.17):
+
+    - nu = 1/2: exp(-t), the Laplace kernel; f'(s) = -e^{-t} / (2t) is unbounded at s = 0 but the
+      pairwise term has bounded magnitude e^{-t} / sqrt(h) (guarded like any ``singular`` kernel);
+    - nu = 3/2: (1 + t) e^{-t}, f' = -(3/2) e^{-t}, finite at 0, so the gradient at r = 0 is 0;
+    - nu = 5/2: (1 + t + t^2 / 3) e^{-t}, f' = -(5/6)(1 + t) e^{-t}.
     """
 
     def __init__(self, nu: float = 1.5, bandwidth="median"):
         super().__init__(bandwidth)
-        if nu not in (0.5, 1.5, 2.5):
+        if isinstance(nu, bool) or not isinstance(nu, numbers.Real) or float(nu) not in (0.5, 1.5, 2.5):
             raise ValueError(f"Matern: nu must be one of 0.5, 1.5, 2.5, got {nu!r}")
         self.nu = float(nu)
         self.singular = self.nu == 0.5
 
-    def profile(self, s):
+    def exact_profile(self, s):
         t = (2 * self.nu * s).sqrt()
         e = torch.exp(-t)
         if self.nu == 0.5:
@@ -242,7 +283,9 @@ class Matern(RadialKernel):
         if self.nu == 0.5:
             return e * (1 + t) / (4 * t.pow(3))  # d/ds of -e^{-t}/(2t) with t = sqrt(s)
         if self.nu == 1.5:
-            return 1.5 * e * 3 / (2 * t)  # d/ds of -1.5 e^{-t}, dt/ds = 3 / (2t)
+            # d/ds of -1.5 e^{-t}, dt/ds = 3 / (2t): infinite at s = 0, where the kernel Stein
+            # discrepancy only uses it multiplied by s (limit 0); return 0 there to avoid inf * 0.
+            return torch.where(t > 0, 1.5 * e * 3 / (2 * t.clamp_min(torch.finfo(s.dtype).tiny)), torch.zeros_like(t))
         return (25 / 12) * e  # d/ds of -(5/6)(1+t)e^{-t} = (5/6) t e^{-t} dt/ds, dt/ds = 5 / (2t)
 
     def state_dict(self):
@@ -253,10 +296,19 @@ class Matern(RadialKernel):
 
 
 class GammaExponential(RadialKernel):
-    """Gamma-exponential kernel exp(-s^(gamma/2)), 0 < gamma <= 2 (gamma = 2 is the RBF).
+    """Gamma-exponential kernel exp(-(r / l)^gamma) = exp(-s^(gamma/2)), l = sqrt(h), 0 < gamma <= 2.
 
-    For gamma < 2, f'(s) = -(gamma/2) s^(gamma/2 - 1) f(s) is unbounded at s = 0; the self-pair
-    contributes nothing to the update.
+    Handbook: "Gaussian Processes for Machine Learning", ch. 4 (eq. 4.18). gamma = 2 is the RBF,
+    gamma = 1 the Laplace kernel (= Matérn 1/2 up to the length scale). For gamma < 2,
+    f'(s) = -(gamma/2) s^(gamma/2 - 1) f(s) is unbounded at s = 0. The self-pair contributes nothing;
+    for gamma < 1 even the pairwise term is unbounded near 0 and is capped at its value at
+    s = ``GUARD`` keeping its direction (see :meth:`RadialKernel.profile`).
+
+    Parameters
+    ----------
+    gamma : float, default=1.0
+        Exponent in (0, 2].
+    bandwidth : "median" or float, default="median"
     """
 
     def __init__(self, gamma: float = 1.0, bandwidth="median"):
@@ -266,7 +318,7 @@ class GammaExponential(RadialKernel):
         self.gamma = float(gamma)
         self.singular = self.gamma < 2
 
-    def profile(self, s):
+    def exact_profile(self, s):
         a = self.gamma / 2
         f = torch.exp(-s.pow(a))
         return f, -a * s.pow(a - 1) * f
@@ -359,3 +411,6 @@ class Sum(Kernel):
 
     def __repr__(self):
         return " + ".join(map(repr, self.parts))
+
+
+from .weighted import TargetWeighted  # noqa: E402  (defined in its own module; uses the classes above)

@@ -22,6 +22,7 @@ from .kernels import IMQ, Kernel, Linear
 from .precondition import Affine, covariance_affine, default_start, find_mode, laplace_affine
 from .result import Result
 from .state import capture_state, restore_state
+from .schedules import as_drive
 from .stein import svgd_direction
 from .steppers import Optim, Stepper, as_stepper
 from .target import Target
@@ -110,6 +111,7 @@ class Sampler:
         seed: int | None = None,
         device=None,
         state: Mapping | None = None,
+        anneal=None,
     ):
         if not isinstance(target, Target):
             raise TypeError(f"target must be a stein_torch.Target, got {type(target).__qualname__}")
@@ -153,7 +155,9 @@ class Sampler:
         self.init = init
         self.step_count = 0
         self.grad_evals = 0
-        self.drive: Callable[[int], float] = lambda step: 1.0
+        self.anneal = anneal
+        self.drive: Callable[[int], float] = as_drive(anneal)
+        self._last_velocity_eval = None  # (u, lp, score, bad) of the latest velocity call
         self._trace: dict[str, list] = {}
         self._fault_streak = 0
         self._last_error: BaseException | None = None
@@ -287,6 +291,7 @@ class Sampler:
 
     def _velocity(self, u):
         lp, score, bad = self._evaluate(u)
+        self._last_velocity_eval = (u, lp, score, bad)
         phi = self.direction(u, score, lp)
         return torch.where(bad[..., None], torch.full_like(phi, float("nan")), phi)
 
@@ -300,9 +305,15 @@ class Sampler:
             self._step()
 
     def _step(self) -> None:
+        drive = self.drive(self.step_count)
         phi = self.direction(self.u, self.score, self.lp)
+        self._last_velocity_eval = None
         u_new = self.stepper.step(self.u, phi, self._velocity)
-        lp, score, bad = self._evaluate(u_new)
+        cached, self._last_velocity_eval = self._last_velocity_eval, None
+        if cached is not None and cached[0] is u_new:  # multi-stage steppers end on the new point
+            lp, score, bad = (t.clone() for t in cached[1:])
+        else:
+            lp, score, bad = self._evaluate(u_new)
         faults = int(bad.sum())
         for _ in range(MAX_BACKTRACK):
             if not bad.any():
@@ -324,7 +335,7 @@ class Sampler:
             raise FloatingPointError(self._fault_message(faults, reverted, bad.numel())) from self._last_error
         self.u, self.lp, self.score = u_new, lp, score
         self.step_count += 1
-        self._record(phi=phi, faults=faults, reverted=reverted)
+        self._record(phi=phi, faults=faults, reverted=reverted, drive=drive)
         if self._rewhiten_due():
             self.rewhiten()
 
@@ -368,7 +379,11 @@ class Sampler:
             "faults": figures["faults"],
             "reverted": figures["reverted"],
             "grad_evals": self.grad_evals,
+            "drive": figures["drive"],
         }
+        info = getattr(self.stepper, "last_info", None)  # e.g. Adaptive: rejections, error
+        if isinstance(info, dict):
+            row.update({k: v for k, v in info.items() if k not in row})
         h = _bandwidth(self.kernel)
         if h is not None:
             row["bandwidth"] = h
@@ -462,6 +477,7 @@ class Sampler:
             "seed": self.seed,
             "dtype": str(self.dtype).replace("torch.", ""),
             "grad_evals": self.grad_evals,
+            "anneal": repr(self.anneal),
         }
         if data is not None:
             settings["batch_size"] = str(data.batch_size)
@@ -494,6 +510,7 @@ def sample(
     checkpoint=None,
     checkpoint_every: int | None = None,
     resume=None,
+    anneal=None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
 
@@ -546,6 +563,10 @@ def sample(
         whitening) is restored from the file, not recomputed; ``init`` is ignored. Target and
         settings must be those of the saved run; the draws are then bit for bit those of an
         uninterrupted run. Loading never executes code from the file.
+    anneal : callable, optional
+        Annealing schedule ``step -> drive`` in [0, 1] scaling the score term of the update, e.g.
+        ``st.schedules.linear(300)`` or ``st.schedules.cyclical(4, 100)``; for multimodal targets
+        (see :mod:`stein_torch.schedules`; combine with ``precondition=None`` and a broad ``init``).
 
     Returns
     -------
@@ -571,7 +592,7 @@ def sample(
     state = io.load_checkpoint(resume, "resume") if resume is not None else None
     sampler = Sampler(
         target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
-        precondition=precondition, seed=seed, device=device, state=state,
+        precondition=precondition, seed=seed, device=device, state=state, anneal=anneal,
     )
     if sampler.step_count > steps:
         raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")
