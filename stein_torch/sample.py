@@ -357,7 +357,7 @@ class Sampler:
         self.affine = covariance_affine(self.u, self.affine)
         self.u = self.affine.to_u(z)
         self.score = self.affine.score_u(score_z)
-        self.stepper.bind(self.u)
+        self.stepper.rebind(self.u)
 
     def _fault_message(self, faults: int, reverted: int, total: int) -> str:
         last = self._last_error

@@ -27,6 +27,10 @@ class Stepper:
     def bind(self, particles: torch.Tensor) -> None:
         """Called once with the initial particles (B, N, d) before the first step."""
 
+    def rebind(self, particles: torch.Tensor) -> None:
+        """Called when the sampler changes coordinates (re-whitening); by default a fresh start."""
+        self.bind(particles)
+
     def step(self, u: torch.Tensor, phi: torch.Tensor, velocity: Callable) -> torch.Tensor:
         """Return the particles after one step (B, N, d)."""
         raise NotImplementedError
@@ -248,6 +252,10 @@ class Adaptive(Stepper):
 
     def bind(self, particles):
         self._reset()
+
+    def rebind(self, particles):
+        """New coordinates (re-whitening): keep the step size and the counters; the whitened
+        coordinates before and after have the same scale."""
 
     def _error_norm(self, error, u, u_new):
         scale = self.atol + self.rtol * torch.maximum(u.abs(), u_new.abs())

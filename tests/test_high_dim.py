@@ -22,8 +22,10 @@ def marginal_sd(run):
     return run.particles[0].std(0)
 
 
-def test_default_settings_keep_spread():
-    run = st.sample(standard_normal(), N, 200, seed=0, progress=False)  # RBF() + Linear(), Laplace start
+@pytest.mark.parametrize("kernel", [None, st.kernels.RBF() + st.kernels.Linear()], ids=["default", "rbf+linear"])
+def test_default_settings_keep_spread(kernel):
+    # default kernel IMQ() + Linear(radius=2.0), and RBF() + Linear(); Laplace start
+    run = st.sample(standard_normal(), N, 200, kernel=kernel, seed=0, progress=False)
     sd = marginal_sd(run)
     assert torch.all((sd - 1).abs() < 0.1), sd  # closed form: sd 1 in every coordinate
 
