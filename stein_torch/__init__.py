@@ -8,9 +8,12 @@ torch.Size([1, 100, 2])
 """
 
 from . import kernels, steppers
+from .compare import compare
+from .langevin import langevin
 from .result import Result
 from .sample import Sampler, sample
 from .stein import ksd, svgd_direction
+from .stopping import StopRule
 from .target import Param, Target
 
 __version__ = "0.1.0"
@@ -19,9 +22,12 @@ __all__ = [
     "Param",
     "Result",
     "Sampler",
+    "StopRule",
     "Target",
+    "compare",
     "kernels",
     "ksd",
+    "langevin",
     "sample",
     "steppers",
     "svgd_direction",

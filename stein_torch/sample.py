@@ -17,8 +17,9 @@ import torch
 from .kernels import RBF, Kernel, Linear
 from .precondition import Affine, default_start, find_mode, laplace_affine
 from .result import Result
-from .stein import svgd_direction
+from .stein import ksd, svgd_direction
 from .steppers import Stepper, as_stepper
+from .stopping import StopRule, as_stop_rule
 from .target import Target
 
 __all__ = ["sample", "Sampler", "default_kernel", "default_stepper"]
@@ -65,6 +66,7 @@ class Sampler:
         precondition: str | None = "auto",
         seed: int | None = None,
         device=None,
+        stop: StopRule | bool | None = None,
     ):
         if not isinstance(target, Target):
             raise TypeError(f"target must be a stein_torch.Target, got {type(target).__qualname__}")
@@ -89,6 +91,9 @@ class Sampler:
         self.seed = int(seed) if seed is not None else int(torch.seed() % (2**63))
         self.generator = torch.Generator().manual_seed(self.seed)
         self.init = init
+        self.stop_rule = as_stop_rule(stop)
+        self.ksd_every = self.stop_rule.every if self.stop_rule is not None else 10
+        self.stop_reason = "steps"
         self.step_count = 0
         self.grad_evals = 0
         self.drive: Callable[[int], float] = lambda step: 1.0
@@ -238,12 +243,25 @@ class Sampler:
         h = _bandwidth(self.kernel)
         if h is not None:
             row["bandwidth"] = h
+        if self.step_count % self.ksd_every == 0:  # KSD on whitened coordinates, from the scores at hand
+            row["ksd"] = self.ksd().cpu().numpy()
+            if self.stop_rule is not None and self.stop_rule.update(self.step_count, row["ksd"]):
+                self.stop_reason = self.stop_rule.reason
+        else:
+            row["ksd"] = np.full(self.ensembles, np.nan)
         for k, v in row.items():
             self._trace.setdefault(k, []).append(v)
 
+    def ksd(self) -> torch.Tensor:
+        """KSD (V-statistic, IMQ c = 1, beta = -1/2, h = 1) of each ensemble on the whitened
+        coordinates u, shape (ensembles,); see :mod:`stein_torch.stopping`."""
+        return ksd(self.u, self.score)
+
     def run(self, steps: int, progress: bool | None = None) -> "Sampler":
-        """Take ``steps`` steps, with a progress bar when ``progress`` (default: when on a terminal)."""
+        """Take up to ``steps`` steps (fewer when the stop rule fires), with a progress bar when
+        ``progress`` (default: when on a terminal). Sets :attr:`stop_reason`."""
         steps = _check_count(steps, "steps", minimum=0)
+        self.stop_reason = "steps"
         if progress is None:
             progress = sys.stderr.isatty()
         from tqdm.auto import tqdm
@@ -252,9 +270,11 @@ class Sampler:
             for _ in range(steps):
                 self.step()
                 bar.update(1)
-                if self.step_count % 10 == 0:
-                    bar.set_postfix(lp=f"{self._trace['lp'][-1]:.4g}", step=f"{self.stepper.step_size:.3g}")
-        self.stop_reason = "steps"
+                if self.step_count % self.ksd_every == 0:
+                    bar.set_postfix(lp=f"{self._trace['lp'][-1]:.4g}", step=f"{self.stepper.step_size:.3g}",
+                                    ksd=f"{float(np.max(self._trace['ksd'][-1])):.3g}")
+                if self.stop_reason != "steps":
+                    break
         return self
 
     # ------------------------------------------------------------------ output
@@ -273,8 +293,10 @@ class Sampler:
             "seed": self.seed,
             "dtype": str(self.dtype).replace("torch.", ""),
             "grad_evals": self.grad_evals,
+            "ksd": self.ksd().cpu().numpy(),  # final KSD per ensemble, whitened coordinates
+            "stop_rule": repr(self.stop_rule),
         }
-        return Result(self.target, z, self.lp.detach().clone(), trace, settings, getattr(self, "stop_reason", "steps"))
+        return Result(self.target, z, self.lp.detach().clone(), trace, settings, self.stop_reason)
 
 
 def _bandwidth(kernel) -> float | None:
@@ -300,6 +322,7 @@ def sample(
     progress: bool | None = None,
     seed: int | None = None,
     device=None,
+    stop: StopRule | bool | None = None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
 
@@ -310,7 +333,7 @@ def sample(
     particles : int, default=200
         Particles per ensemble.
     steps : int, default=1000
-        Number of SVGD steps.
+        Most SVGD steps; the stop rule may end the run earlier.
     kernel : Kernel, optional
         Default ``RBF() + Linear()`` (median-heuristic bandwidth, moment-matching linear part).
     stepper : Stepper or callable, optional
@@ -333,6 +356,13 @@ def sample(
         Show a tqdm bar (step, mean log density, step size); default on when stderr is a terminal.
     seed : int, optional
         Same seed, same draws.
+    stop : StopRule or bool, optional
+        When to end the run before ``steps``: None or True -> the default
+        :class:`~stein_torch.stopping.StopRule` (KSD plateau after at least 500 steps), False -> run
+        all ``steps``, or a StopRule. The KSD of each ensemble (whitened coordinates) is recorded
+        every ``stop.every`` steps (10 without a rule) in ``trace["ksd"]`` (NaN between checks), the
+        final one in ``settings["ksd"]`` (InferenceData attrs ``ksd``); ``stop_reason`` says why
+        the run ended ("steps", "ksd_plateau", "ksd_tolerance").
 
     Returns
     -------
@@ -342,7 +372,7 @@ def sample(
     """
     sampler = Sampler(
         target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
-        precondition=precondition, seed=seed, device=device,
+        precondition=precondition, seed=seed, device=device, stop=stop,
     )
     return sampler.run(steps, progress=progress).result()
 
