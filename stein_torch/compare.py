@@ -1,8 +1,9 @@
 """Side by side on the user's own model: SVGD configurations and Langevin at equal score evaluations.
 
-Each method runs once; along the way its output is measured at ``checkpoints`` points (SVGD: the
-particles after so many steps; Langevin: the draws kept so far), so one call gives accuracy against
-score evaluations for a plot, and the final figures for a table.
+Each method runs once; along the way its output is measured at about ``checkpoints`` points spaced
+geometrically (SVGD: the starting particles, then the particles after so many steps; Langevin: the
+draws kept so far, from 10 on), so one call gives accuracy against score evaluations for a plot, and
+the final figures for a table.
 
 Figures (every row and every checkpoint):
 
@@ -137,8 +138,9 @@ def _run_svgd(target, options, budget, checkpoints, meter, seed, progress):
     start = time.perf_counter()
     sampler = Sampler(target, particles, seed=seed, **opts)
     elapsed = time.perf_counter() - start
-    every = max(1, -(-steps // checkpoints))  # ceil: at most `checkpoints` measurements
-    path = []
+    marks = set(np.unique(np.geomspace(1, steps, checkpoints).round().astype(int)).tolist())
+    z = sampler.affine.to_z(sampler.u).reshape(-1, target.dim).detach()
+    path = [{"grad_evals": sampler.grad_evals, "seconds": elapsed, **meter(z)}]  # the starting particles
     from tqdm.auto import tqdm
 
     with tqdm(total=steps, desc="svgd", disable=not progress, leave=False) as bar:
@@ -148,7 +150,7 @@ def _run_svgd(target, options, budget, checkpoints, meter, seed, progress):
             elapsed += time.perf_counter() - start
             bar.update(1)
             done = sampler.stop_reason != "steps" or sampler.step_count == steps
-            if sampler.step_count % every == 0 or done:
+            if sampler.step_count in marks or done:
                 z = sampler.affine.to_z(sampler.u).reshape(-1, target.dim).detach()
                 path.append({"grad_evals": sampler.grad_evals, "seconds": elapsed, **meter(z)})
             if sampler.stop_reason != "steps":
@@ -171,7 +173,7 @@ def _run_langevin(target, options, budget, checkpoints, meter, seed, progress):
     loop = run.trace["seconds"][-1]
     setup = total - loop
     path = []
-    marks = np.unique(np.linspace(draws / checkpoints, draws, checkpoints).round().astype(int).clip(1, draws))
+    marks = np.unique(np.geomspace(min(10, draws), draws, checkpoints).round().astype(int).clip(2, draws))
     for kept in marks:
         z = run.particles[:, :kept].reshape(-1, target.dim)
         seconds = setup + float(run.trace["seconds"][warmup + kept - 1])
@@ -209,7 +211,8 @@ def compare(
         {"chains": 8}}`` (``method`` defaults to the label). Options are those of
         :func:`stein_torch.sample` / :func:`stein_torch.langevin`. Default ("svgd", "mala").
     checkpoints : int, default=20
-        Measurements along each run (for :func:`plot_comparison`).
+        Measurements along each run, spaced geometrically (for :func:`plot_comparison`); SVGD adds
+        one for its starting particles.
     derived : callable, optional
         Maps draws (dict name -> array (n, *shape), constrained) to the reference's names.
     ksd_points : int, default=1000

@@ -104,7 +104,7 @@ def gaussian_target(dim=3):
 
 def test_default_rule_stops_early_and_keeps_the_answer():
     target, mean, cov = gaussian_target()
-    run = st.sample(target, particles=100, steps=3000, seed=0)
+    run = st.sample(target, particles=40, steps=3000, seed=0)
     assert run.stop_reason == "ksd_plateau"
     assert 500 <= run.settings["steps"] < 3000  # min_steps of the default rule
     x = run.draws["x"][0]

@@ -1,6 +1,6 @@
 """Accuracy suite: default SVGD and MALA on the eight posteriordb reference posteriors.
 
-    stein-torch bench accuracy [--names NAME ...] [--posteriors DIR] [--seed 0]
+    stein-torch bench accuracy [--names NAME ...] [--posteriors DIR] [--seed 0] [--threads N]
 
 For each posterior it runs ``st.sample(target, particles=200, seed=0)`` (default kernel, stepper and
 stop rule) and ``st.langevin(target, chains=4, draws=1000, warmup=1000, seed=0)`` through
@@ -40,6 +40,7 @@ def load_models(posteriors: str | None):
         )
     spec = importlib.util.spec_from_file_location("_stein_torch_posteriordb", MODELS_FILE)
     module = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = module  # dataclasses look their module up while the file runs
     spec.loader.exec_module(module)
     folder = posteriors or os.environ.get("STEIN_TORCH_POSTERIORS")
     if folder:
@@ -73,7 +74,15 @@ def main(args: list[str] | None = None) -> int:
     parser.add_argument("--names", nargs="*", default=None, help="posteriors to run (default: all eight)")
     parser.add_argument("--posteriors", default=None, help="folder of the posteriordb reference posteriors")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--threads", type=int, default=None,
+                        help="torch intra-op threads (1 is fastest on a machine shared with other jobs)")
     opts = parser.parse_args(args)
+    if opts.threads is not None:
+        if opts.threads < 1:
+            parser.error(f"--threads must be >= 1, got {opts.threads}")
+        import torch
+
+        torch.set_num_threads(opts.threads)
     pdb = load_models(opts.posteriors)
     names = opts.names or pdb.NAMES
     unknown = [n for n in names if n not in pdb.NAMES]
