@@ -74,7 +74,7 @@ class StopRule:
     ...     if rule.update(step, torch.tensor([1.0 / step + 0.1])):
     ...         break
     >>> rule.reason, step
-    ('ksd_plateau', 410)
+    ('ksd_plateau', 200)
     """
 
     def __init__(
