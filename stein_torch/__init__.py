@@ -11,9 +11,12 @@ from . import io, kernels, schedules, steppers
 from .data import ObservedData
 from .io import load
 from .predict import PredictiveBands, predictive_interval
+from .compare import compare
+from .langevin import langevin
 from .result import Result
 from .sample import Sampler, sample
 from .stein import ksd, svgd_direction
+from .stopping import StopRule
 from .target import Param, Target
 
 __version__ = "0.1.0"
@@ -24,10 +27,13 @@ __all__ = [
     "PredictiveBands",
     "Result",
     "Sampler",
+    "StopRule",
     "Target",
+    "compare",
     "io",
     "kernels",
     "ksd",
+    "langevin",
     "load",
     "predictive_interval",
     "sample",

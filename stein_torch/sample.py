@@ -23,8 +23,9 @@ from .precondition import Affine, covariance_affine, default_start, find_mode, l
 from .result import Result
 from .state import capture_state, restore_state
 from .schedules import as_drive
-from .stein import svgd_direction
+from .stein import ksd, svgd_direction
 from .steppers import Optim, Stepper, as_stepper
+from .stopping import StopRule, as_stop_rule
 from .target import Target
 
 __all__ = ["sample", "Sampler", "default_kernel", "default_stepper"]
@@ -112,6 +113,7 @@ class Sampler:
         device=None,
         state: Mapping | None = None,
         anneal=None,
+        stop: StopRule | bool | None = None,
     ):
         if not isinstance(target, Target):
             raise TypeError(f"target must be a stein_torch.Target, got {type(target).__qualname__}")
@@ -153,6 +155,9 @@ class Sampler:
         if getattr(target, "data", None) is not None:  # minibatch shuffles: their own stream from the seed
             target.data.start(torch.Generator().manual_seed(self.seed + 1))
         self.init = init
+        self.stop_rule = as_stop_rule(stop)
+        self.ksd_every = self.stop_rule.every if self.stop_rule is not None else 10
+        self.stop_reason = "steps"
         self.step_count = 0
         self.grad_evals = 0
         self.anneal = anneal
@@ -387,6 +392,12 @@ class Sampler:
         h = _bandwidth(self.kernel)
         if h is not None:
             row["bandwidth"] = h
+        if self.step_count % self.ksd_every == 0:  # KSD on whitened coordinates, from the scores at hand
+            row["ksd"] = self.ksd().cpu().numpy()
+            if self.stop_rule is not None and self.stop_rule.update(self.step_count, row["ksd"]):
+                self.stop_reason = self.stop_rule.reason
+        else:
+            row["ksd"] = np.full(self.ensembles, np.nan)
         for k, v in row.items():
             self._trace.setdefault(k, []).append(v)
 
@@ -403,6 +414,11 @@ class Sampler:
         if checkpoint is not None:
             checkpoint = io.check_output_path(checkpoint, "checkpoint")
         every = CHECKPOINT_EVERY if checkpoint_every is None else _check_count(checkpoint_every, "checkpoint_every")
+
+    def ksd(self) -> torch.Tensor:
+        """KSD (V-statistic, IMQ c = 1, beta = -1/2, h = 1) of each ensemble on the whitened
+        coordinates u, shape (ensembles,); see :mod:`stein_torch.stopping`."""
+        return ksd(self.u, self.score)
         if progress is None:
             progress = sys.stderr.isatty()
         from tqdm.auto import tqdm
@@ -417,11 +433,14 @@ class Sampler:
                         break
                     self.step()
                     bar.update(1)
-                    if self.step_count % 10 == 0:
-                        bar.set_postfix(lp=f"{self._trace['lp'][-1]:.4g}", step=f"{self.stepper.step_size:.3g}")
+                    if self.step_count % self.ksd_every == 0:
+                        bar.set_postfix(lp=f"{self._trace['lp'][-1]:.4g}", step=f"{self.stepper.step_size:.3g}",
+                                        ksd=f"{float(np.max(self._trace['ksd'][-1])):.3g}")
                     if checkpoint is not None and self.step_count % every == 0:
                         self.save(checkpoint)
                         saved_at = self.step_count
+                    if self.stop_reason != "steps":  # the stop rule fired
+                        break
             except KeyboardInterrupt:  # not through the guard (no handler installed): maybe mid-step
                 if interrupt.aborted:
                     raise
@@ -478,6 +497,8 @@ class Sampler:
             "dtype": str(self.dtype).replace("torch.", ""),
             "grad_evals": self.grad_evals,
             "anneal": repr(self.anneal),
+            "ksd": self.ksd().cpu().numpy(),  # final KSD per ensemble, whitened coordinates
+            "stop_rule": repr(self.stop_rule),
         }
         if data is not None:
             settings["batch_size"] = str(data.batch_size)
@@ -511,6 +532,7 @@ def sample(
     checkpoint_every: int | None = None,
     resume=None,
     anneal=None,
+    stop: StopRule | bool | None = None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
 
@@ -521,7 +543,7 @@ def sample(
     particles : int, default=200
         Particles per ensemble.
     steps : int, default=400
-        Number of SVGD steps.
+        Most SVGD steps; the stop rule may end the run earlier.
     kernel : Kernel, optional
         Default ``IMQ() + Linear(radius=2.0)`` (median-heuristic bandwidth, moment-matching
         linear part; see :func:`default_kernel`), or the target's preferred kernel (module
@@ -567,6 +589,13 @@ def sample(
         Annealing schedule ``step -> drive`` in [0, 1] scaling the score term of the update, e.g.
         ``st.schedules.linear(300)`` or ``st.schedules.cyclical(4, 100)``; for multimodal targets
         (see :mod:`stein_torch.schedules`; combine with ``precondition=None`` and a broad ``init``).
+    stop : StopRule or bool, optional
+        When to end the run before ``steps``: None or True -> the default
+        :class:`~stein_torch.stopping.StopRule` (KSD plateau after at least 300 steps), False -> run
+        all ``steps``, or a StopRule. The KSD of each ensemble (whitened coordinates) is recorded
+        every ``stop.every`` steps (10 without a rule) in ``trace["ksd"]`` (NaN between checks), the
+        final one in ``settings["ksd"]`` (InferenceData attrs ``ksd``); ``stop_reason`` says why
+        the run ended ("steps", "ksd_plateau", "ksd_tolerance").
 
     Returns
     -------
@@ -592,7 +621,7 @@ def sample(
     state = io.load_checkpoint(resume, "resume") if resume is not None else None
     sampler = Sampler(
         target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
-        precondition=precondition, seed=seed, device=device, state=state, anneal=anneal,
+        precondition=precondition, seed=seed, device=device, state=state, anneal=anneal, stop=stop,
     )
     if sampler.step_count > steps:
         raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")

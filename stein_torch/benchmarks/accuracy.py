@@ -1,0 +1,113 @@
+"""Accuracy suite: default SVGD and MALA on the eight posteriordb reference posteriors.
+
+    stein-torch bench accuracy [--names NAME ...] [--posteriors DIR] [--seed 0] [--threads N]
+
+For each posterior it runs ``st.sample(target, particles=200, seed=0)`` (default kernel, stepper and
+stop rule) and ``st.langevin(target, chains=4, draws=1000, warmup=1000, seed=0)`` through
+:func:`stein_torch.compare` and prints, per posterior and method: mean_error (max over parameters of
+|mean - ref mean| / ref sd), the range of sd / ref sd, w1 (mean 1-D Wasserstein distance / ref sd),
+the KSD (whitened coordinates, see :mod:`stein_torch.compare`), score evaluations and seconds, and the
+score evaluations and seconds after which the output met the floor (mean_error <= 0.1, sd ratios in
+[0.9, 1.1]) and held it. The exit status is 0 when SVGD meets the floor on every posterior and MALA
+on at least six, else 1.
+
+The torch models of the posteriors live in ``tests/posteriordb.py`` of a source checkout (beside the
+package); the data and reference draws in ``../shared/posteriors`` beside the checkout, or in the
+folder given by ``--posteriors`` or the environment variable ``STEIN_TORCH_POSTERIORS``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import os
+import pathlib
+import sys
+
+import stein_torch as st
+from stein_torch.compare import FLOOR
+
+MODELS_FILE = pathlib.Path(__file__).resolve().parents[2] / "tests" / "posteriordb.py"
+MALA_NEEDED = 6
+
+
+def load_models(posteriors: str | None):
+    """Import tests/posteriordb.py by path; point it at the reference folder."""
+    if not MODELS_FILE.is_file():
+        raise SystemExit(
+            f"bench accuracy: the reference models ({MODELS_FILE}) are not installed; run it from a source "
+            "checkout of stein_torch (the tests folder beside the package)"
+        )
+    spec = importlib.util.spec_from_file_location("_stein_torch_posteriordb", MODELS_FILE)
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = module  # dataclasses look their module up while the file runs
+    spec.loader.exec_module(module)
+    folder = posteriors or os.environ.get("STEIN_TORCH_POSTERIORS")
+    if folder:
+        module.POSTERIORS_DIR = pathlib.Path(folder).resolve()
+    missing = [n for n in module.NAMES if not (module.POSTERIORS_DIR / n / "reference_draws.json.zip").is_file()]
+    if missing:
+        raise SystemExit(
+            f"bench accuracy: reference posteriors not found under {module.POSTERIORS_DIR} (missing {missing}); "
+            "pass --posteriors DIR or set STEIN_TORCH_POSTERIORS"
+        )
+    return module
+
+
+def target_of(model) -> st.Target:
+    return st.Target(model.log_joint, params={k: st.Param(tuple(s), c) for k, (s, c) in model.params.items()})
+
+
+def run_one(pdb, name: str, seed: int) -> list[dict]:
+    model = pdb.model(name)
+    methods = {"svgd": {"method": "svgd", "particles": 200},
+               "mala": {"method": "mala", "chains": 4, "draws": 1000, "warmup": 1000}}
+    return st.compare(target_of(model), pdb.load_reference(name), methods=methods, derived=model.derived, seed=seed)
+
+
+def _fmt(value, spec):
+    return "-" if value is None else format(value, spec)
+
+
+def main(args: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="stein-torch bench accuracy", description=__doc__.splitlines()[0])
+    parser.add_argument("--names", nargs="*", default=None, help="posteriors to run (default: all eight)")
+    parser.add_argument("--posteriors", default=None, help="folder of the posteriordb reference posteriors")
+    parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--threads", type=int, default=None,
+                        help="torch intra-op threads (1 is fastest on a machine shared with other jobs)")
+    opts = parser.parse_args(args)
+    if opts.threads is not None:
+        if opts.threads < 1:
+            parser.error(f"--threads must be >= 1, got {opts.threads}")
+        import torch
+
+        torch.set_num_threads(opts.threads)
+    pdb = load_models(opts.posteriors)
+    names = opts.names or pdb.NAMES
+    unknown = [n for n in names if n not in pdb.NAMES]
+    if unknown:
+        parser.error(f"--names: unknown posteriors {unknown}; choose from {pdb.NAMES}")
+    header = (f"{'posterior':<38} {'method':<6} {'mean_err':>8} {'sd_min':>6} {'sd_max':>6} {'w1':>6} {'ksd':>7} "
+              f"{'evals':>8} {'sec':>7} {'evals_ok':>8} {'sec_ok':>7} stop")
+    print(f"accuracy floor: mean_error <= {FLOOR['mean_error']}, sd ratio in [{FLOOR['sd_ratio_min']}, "
+          f"{FLOOR['sd_ratio_max']}]; *_ok: first point from which the floor held to the end")
+    print(header)
+    print("-" * len(header))
+    passed = {"svgd": 0, "mala": 0}
+    for name in names:
+        for row in run_one(pdb, name, opts.seed):
+            ok = row["evals_to_floor"] is not None  # the final output is the last checkpoint
+            passed[row["method"]] += ok
+            print(f"{name[:38]:<38} {row['method']:<6} {row['mean_error']:8.3f} {row['sd_ratio_min']:6.3f} "
+                  f"{row['sd_ratio_max']:6.3f} {row['w1']:6.3f} {row['ksd']:7.4f} {row['grad_evals']:8d} "
+                  f"{row['seconds']:7.1f} {_fmt(row['evals_to_floor'], '8d'):>8} "
+                  f"{_fmt(row['seconds_to_floor'], '7.1f'):>7} {row['stop_reason']}{'' if ok else '  (floor missed)'}",
+                  flush=True)
+    print(f"floor met: svgd {passed['svgd']}/{len(names)}, mala {passed['mala']}/{len(names)}")
+    good = passed["svgd"] == len(names) and passed["mala"] >= min(MALA_NEEDED, len(names))
+    return 0 if good else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))

@@ -1,0 +1,95 @@
+"""`st.compare`: SVGD and Langevin side by side at equal score evaluations.
+
+Sources: closed-form Gaussian moments (reference draws from `scipy.stats.multivariate_normal`); the
+1-D Wasserstein distance of a translate, W1(X, X + c) = |c| (closed form), checked through
+`scipy.stats.wasserstein_distance`.
+"""
+
+from __future__ import annotations
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import numpy as np
+import pytest
+import scipy.stats
+import torch
+
+import stein_torch as st
+from stein_torch.compare import accuracy, plot_comparison
+
+MEAN = np.array([1.0, -2.0])
+COV = np.array([[1.0, 0.6], [0.6, 2.0]])
+
+
+def gaussian_target():
+    mean, prec = torch.tensor(MEAN), torch.linalg.inv(torch.tensor(COV))
+    return st.Target(lambda x: -0.5 * (((x - mean) @ prec) * (x - mean)).sum(-1), dim=2)
+
+
+def reference_draws(n=20000):
+    return {"x": scipy.stats.multivariate_normal(MEAN, COV).rvs(n, random_state=np.random.default_rng(0))}
+
+
+def test_accuracy_of_a_translate_is_the_shift():
+    # W1(X, X + c) = |c| and the sd is unchanged (closed form); scipy.stats.wasserstein_distance computes it.
+    ref = np.random.default_rng(1).normal(size=(5000, 2))
+    shifted = ref + np.array([0.5, 0.0])
+    figures = accuracy({"x": shifted}, {"x": ref})
+    sd = ref.std(0, ddof=1)
+    assert figures["mean_error"] == pytest.approx(0.5 / sd[0], rel=1e-9)
+    assert figures["w1"] == pytest.approx((0.5 / sd[0] + 0.0) / 2, rel=1e-6)
+    assert figures["sd_ratio_min"] == pytest.approx(1.0) and figures["sd_ratio_max"] == pytest.approx(1.0)
+    with pytest.raises(ValueError, match="reference"):
+        accuracy({"y": shifted}, {"x": ref})
+
+
+def test_compare_at_equal_budget_on_a_gaussian():
+    budget = 8000
+    rows = st.compare(gaussian_target(), reference_draws(), budget=budget, checkpoints=4, ksd_points=400,
+                      methods={"svgd": {"particles": 50}, "mala": {"chains": 4}})
+    assert [r["method"] for r in rows] == ["svgd", "mala"]
+    for row in rows:
+        for key in ("grad_evals", "seconds", "ksd", "mean_error", "sd_ratio_min", "sd_ratio_max", "w1"):
+            assert np.isfinite(row[key]), key
+        # equal numbers of score evaluations, within one SVGD step of particles
+        assert budget - 50 <= row["grad_evals"] <= budget
+        evals = [p["grad_evals"] for p in row["path"]]
+        assert evals == sorted(evals) and len(evals) == 4 + (row["method"] == "svgd")  # + starting particles
+    svgd, mala = rows
+    # closed-form Gaussian: both meet the project's accuracy floor (0.1 sd in mean, sd within 10%)
+    for row in rows:
+        assert row["mean_error"] < 0.1 and 0.9 <= row["sd_ratio_min"] <= row["sd_ratio_max"] <= 1.1
+        assert row["evals_to_floor"] is not None and row["evals_to_floor"] <= row["grad_evals"]
+    # the KSD of MALA is taken on 400 evenly thinned draws, SVGD's on its 50 particles
+    assert svgd["points"] == 50 and mala["points"] == 400
+    assert svgd["result"].settings["steps"] == budget // 50 - 1 and svgd["stop_reason"] == "steps"
+    ax = plot_comparison(rows, metric="w1")
+    assert len(ax.get_lines()) == 2 and ax.get_xscale() == "log"
+
+
+def test_compare_without_reference_and_with_ula_and_derived_names():
+    def derived(draws):
+        return {"first": draws["x"][:, 0]}
+
+    rows = st.compare(gaussian_target(), {"first": reference_draws()["x"][:, 0]}, budget=4000, checkpoints=2,
+                      methods=["ula"], derived=derived)
+    assert rows[0]["method"] == "ula" and rows[0]["result"].settings["method"] == "ula"
+    assert "w1" in rows[0]
+    bare = st.compare(gaussian_target(), budget=2000, checkpoints=1, methods=["mala"])
+    assert "mean_error" not in bare[0] and bare[0]["ksd"] > 0
+
+
+def test_bad_input_is_named():
+    t = gaussian_target()
+    with pytest.raises(ValueError, match="method must be one of"):
+        st.compare(t, budget=100, methods=["hmc"])
+    with pytest.raises(ValueError, match="unknown options"):
+        st.compare(t, budget=100, methods={"svgd": {"chains": 2}})
+    with pytest.raises(ValueError, match="budget"):
+        st.compare(t, budget=0)
+    with pytest.raises(ValueError, match="reference"):
+        st.compare(t, {"x": np.zeros(1)}, budget=100)
+    with pytest.raises(ValueError, match="metric"):
+        plot_comparison([{"path": [{"grad_evals": 1, "ksd": 1.0, "points": 1}]}], metric="rmse")
