@@ -401,6 +401,11 @@ class Sampler:
         for k, v in row.items():
             self._trace.setdefault(k, []).append(v)
 
+    def ksd(self) -> torch.Tensor:
+        """KSD (V-statistic, IMQ c = 1, beta = -1/2, h = 1) of each ensemble on the whitened
+        coordinates u, shape (ensembles,); see :mod:`stein_torch.stopping`."""
+        return ksd(self.u, self.score)
+
     def run(
         self, steps: int, progress: bool | None = None, *, checkpoint=None, checkpoint_every: int | None = None
     ) -> "Sampler":
@@ -414,11 +419,6 @@ class Sampler:
         if checkpoint is not None:
             checkpoint = io.check_output_path(checkpoint, "checkpoint")
         every = CHECKPOINT_EVERY if checkpoint_every is None else _check_count(checkpoint_every, "checkpoint_every")
-
-    def ksd(self) -> torch.Tensor:
-        """KSD (V-statistic, IMQ c = 1, beta = -1/2, h = 1) of each ensemble on the whitened
-        coordinates u, shape (ensembles,); see :mod:`stein_torch.stopping`."""
-        return ksd(self.u, self.score)
         if progress is None:
             progress = sys.stderr.isatty()
         from tqdm.auto import tqdm

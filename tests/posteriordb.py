@@ -39,7 +39,10 @@ import pytest
 import torch
 from torch.distributions import constraints
 
-POSTERIORS_DIR = pathlib.Path(__file__).resolve().parent.parent.parent / "shared" / "posteriors"
+POSTERIORS_DIR = pathlib.Path(
+    os.environ.get("STEIN_TORCH_POSTERIORS")
+    or pathlib.Path(__file__).resolve().parent.parent.parent / "shared" / "posteriors"
+).resolve()
 
 NAMES = [
     "eight_schools-eight_schools_noncentered",

@@ -15,7 +15,6 @@ import warnings
 
 import arviz as az
 import numpy as np
-import pytest
 import torch
 from torch import nn
 from torch.distributions import HalfNormal, Normal

@@ -45,6 +45,8 @@ def _check(name: str):
             f"{name} {param}: sd ratio {row['sd_ratio_min']:.3f}..{row['sd_ratio_max']:.3f}"
         )
     assert not any(torch.isnan(v).any() for v in run.draws.values())
+    assert run.stop_reason in ("steps", "ksd_plateau", "ksd_tolerance")  # default stop rule on
+    assert all(k == k and k > 0 for k in run.settings["ksd"])  # final KSD per ensemble, finite
 
 
 @pytest.mark.parametrize("name", DEFAULT)

@@ -2,7 +2,6 @@
 
 import arviz as az
 import numpy as np
-import torch
 from torch.distributions import constraints
 
 import stein_torch as st
