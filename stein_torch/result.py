@@ -156,6 +156,6 @@ def _attr_value(value):
         return int(value)
     if isinstance(value, (int, float, str, np.integer, np.floating)):
         return value
-    if isinstance(value, np.ndarray) and value.ndim == 1 and value.dtype.kind in "iuf":
-        return value  # NetCDF keeps 1-D numeric attributes (e.g. the final KSD per ensemble)
+    if isinstance(value, (list, tuple)) and value and all(isinstance(v, (int, float)) for v in value):
+        return np.asarray(value)  # NetCDF keeps 1-D numeric attributes (e.g. the final KSD per ensemble)
     return str(value)

@@ -497,7 +497,7 @@ class Sampler:
             "dtype": str(self.dtype).replace("torch.", ""),
             "grad_evals": self.grad_evals,
             "anneal": repr(self.anneal),
-            "ksd": self.ksd().cpu().numpy(),  # final KSD per ensemble, whitened coordinates
+            "ksd": self.ksd().cpu().tolist(),  # final KSD per ensemble, whitened coordinates
             "stop_rule": repr(self.stop_rule),
         }
         if data is not None:

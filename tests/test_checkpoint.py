@@ -165,13 +165,13 @@ def test_state_dict_collects_every_part_that_has_one(tmp_path):
     run.rule = CountingRule()
     run.rule.seen, run.rule.history = 7, np.arange(3.0)
     state = run.state_dict()
-    assert set(state["components"]) == {"kernel", "stepper", "rule"}
+    assert set(state["components"]) == {"kernel", "stepper", "stop_rule", "rule"}  # stop rule: on by default
     path = tmp_path / "state.pt"
     run.save(path)
     loaded = st_io.load_checkpoint(path)
 
     fresh = st.Sampler(target, 8, seed=0)
-    with pytest.raises(ValueError, match=r"holds state for \['kernel', 'rule', 'stepper'\]"):
+    with pytest.raises(ValueError, match=r"holds state for \['kernel', 'rule', 'stepper', 'stop_rule'\]"):
         fresh.load_state_dict(loaded)
     fresh.rule = CountingRule()
     fresh.load_state_dict(loaded)

@@ -116,14 +116,14 @@ def test_default_rule_stops_early_and_keeps_the_answer():
 
 def test_ksd_trace_and_final_values():
     target = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=2)  # N(0, I): score -x (closed form)
-    run = st.sample(target, particles=40, steps=95, ensembles=2, seed=1, stop=False)
+    run = st.sample(target, particles=40, steps=95, ensembles=2, seed=1, stop=False, precondition=None)
     assert run.stop_reason == "steps" and run.settings["steps"] == 95
     trace = run.trace["ksd"]
     assert trace.shape == (95, 2)
     checked = np.isfinite(trace).all(1)
     assert checked.nonzero()[0].tolist() == list(range(9, 95, 10))  # after steps 10, 20, ..., 90
-    # For N(0, I) the Laplace whitening is the identity (mode 0, Hessian -I), so the final KSD is
-    # st.ksd of the particles with the closed-form scores -x.
+    # Without whitening the sampler's coordinates are the target's, so the final KSD is st.ksd of
+    # the particles with the closed-form scores -x.
     z = run.particles
     np.testing.assert_allclose(run.settings["ksd"], st.ksd(z, -z).numpy(), rtol=1e-6)
     idata = run.to_inference_data()
