@@ -27,7 +27,7 @@ import torch
 
 from .langevin import langevin
 from .precondition import Affine, default_start, find_mode, laplace_affine
-from .sample import Sampler
+from .sample import DEFAULT_STEPS, Sampler
 from .stein import ksd as kernel_stein_discrepancy
 from .target import Target
 
@@ -129,7 +129,7 @@ class _Meter:
 def _run_svgd(target, options, budget, checkpoints, meter, seed, progress):
     opts = dict(options)
     opts.pop("method")
-    steps = opts.pop("steps", 1000)
+    steps = opts.pop("steps", DEFAULT_STEPS)
     n = opts.get("particles", 200) * opts.get("ensembles", 1)
     if budget is not None:
         steps = max(1, budget // n - 1)  # the initial evaluation counts too
@@ -204,7 +204,8 @@ def compare(
     budget : int, optional
         Score evaluations per method (particles x steps for SVGD, with the stop rule off unless
         given; chains x (1 + warmup + draws) for Langevin, warmup = half). None: each method's own
-        defaults (SVGD: 1000 steps with the default stop rule; Langevin: 1000 warmup + 1000 draws).
+        defaults (SVGD: the default run, at most 400 steps with the default stop rule; Langevin: 1000
+        warmup + 1000 draws).
     methods : list of str or dict of str to dict, optional
         Names among {"svgd", "mala", "ula"}, or label -> options, e.g.
         ``{"svgd": {}, "svgd-imq": {"method": "svgd", "kernel": st.kernels.IMQ()}, "mala":

@@ -16,10 +16,11 @@ identity matrix would need a step size set by the narrowest direction.
 
 During warmup the step size is tuned by dual averaging ("The No-U-Turn Sampler", arXiv:1111.4246,
 section 3.2, constants from there: gamma = 0.05, t0 = 10, kappa = 0.75) towards the acceptance
-probability 0.574, the optimal-scaling value for MALA (Roberts & Rosenthal 1998, from memory), then
-held fixed. Each chain tunes its own step size: a chain that starts in a region of high curvature
-(the neck of a funnel) takes small steps there instead of being stuck. ULA is tuned the same way on the acceptance probability MALA *would* have
-(it is not applied), which keeps its discretisation bias moderate.
+probability 0.574, the optimal-scaling value for MALA ("Optimal scaling of discrete approximations
+to Langevin diffusions", DOI 10.1111/1467-9868.00123, from memory), then held fixed. Each chain tunes
+its own step size: a chain that starts in a region of high curvature (the neck of a funnel) takes
+small steps there instead of being stuck. ULA is tuned the same way on the acceptance probability
+MALA *would* have (it is not applied), which keeps its discretisation bias moderate.
 """
 
 from __future__ import annotations
@@ -39,7 +40,9 @@ from .target import Target
 
 __all__ = ["langevin", "TARGET_ACCEPT"]
 
-TARGET_ACCEPT = 0.574  # optimal MALA acceptance (Roberts & Rosenthal 1998, from memory)
+# optimal MALA acceptance ("Optimal scaling of discrete approximations to Langevin diffusions",
+# DOI 10.1111/1467-9868.00123, from memory)
+TARGET_ACCEPT = 0.574
 LAPLACE_MAX_DIM = 1000
 
 

@@ -33,6 +33,7 @@ __all__ = ["sample", "Sampler", "default_kernel", "default_stepper"]
 MAX_BACKTRACK = 10  # halvings of a faulty particle's step before it is put back where it was
 FAULT_PATIENCE = 25  # consecutive steps with faults before the run gives up
 LAPLACE_MAX_DIM = 1000  # dense Hessian whitening up to this many coordinates
+DEFAULT_STEPS = 400  # most steps of a default run (the stop rule usually ends it at 300-400)
 REWHITEN_FIRST = 25  # re-whiten by the particles' covariance at steps 25, 50, 100, 200, ...
 PRECONDITIONS = ("auto", "laplace", "covariance", None)
 CHECKPOINT_EVERY = 100  # steps between checkpoints when a checkpoint file is given
@@ -517,7 +518,7 @@ def _bandwidth(kernel) -> float | None:
 def sample(
     target: Target,
     particles: int = 200,
-    steps: int = 400,
+    steps: int = DEFAULT_STEPS,
     *,
     kernel: Kernel | None = None,
     stepper=None,

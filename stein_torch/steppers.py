@@ -207,8 +207,8 @@ class Adaptive(Stepper):
     method : {"bs32", "dp54"}, default="bs32"
         Bogacki-Shampine 3(2) or Dormand-Prince 5(4).
     first_step : float, optional
-        Initial h; by default chosen from the first velocity (Hairer's starting-step rule, one extra
-        evaluation).
+        Initial h; by default chosen from the first velocity (the starting-step rule of "Solving
+        Ordinary Differential Equations I", sec. II.4; one extra evaluation).
     max_step : float, default=inf
         Upper bound on h.
     norm : {"rms", "max"}, default="rms"

@@ -55,8 +55,9 @@ def test_mala_matches_a_badly_scaled_correlated_gaussian():
 
 
 def test_acceptance_is_tuned_near_the_optimal_rate():
-    # Optimal-scaling acceptance 0.574 for MALA (Roberts & Rosenthal 1998, from memory): after dual
-    # averaging the mean acceptance of the kept draws lies near it.
+    # Optimal-scaling acceptance 0.574 for MALA ("Optimal scaling of discrete approximations to
+    # Langevin diffusions", DOI 10.1111/1467-9868.00123, from memory): after dual averaging the mean
+    # acceptance of the kept draws lies near it.
     target, _, _ = correlated_gaussian(dim=10)
     run = st.langevin(target, chains=4, draws=500, warmup=500, seed=1)
     accept = run.sample_stats["accept_prob"]
