@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import numbers
+
 import torch
 
-__all__ = ["check_device"]
+__all__ = ["check_device", "check_int"]
 
 
 def check_device(device) -> torch.device:
@@ -29,3 +31,13 @@ def check_device(device) -> torch.device:
     if dev.type == "mps" and torch.backends.mps.is_available():
         return dev
     raise ValueError(f"device: {device!r} is not supported; use 'cpu' or an available 'cuda' device")
+
+
+def check_int(value, name: str, minimum: int = 1) -> int:
+    """An int (not bool) >= ``minimum``; TypeError/ValueError naming ``name`` otherwise."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise TypeError(f"{name} must be an int, got {type(value).__qualname__} ({value!r})")
+    if value < minimum:
+        raise ValueError(f"{name} == {value}, must be >= {minimum}")
+    return int(value)
+

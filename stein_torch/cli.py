@@ -16,6 +16,8 @@ import traceback
 import warnings
 from pathlib import Path
 
+RUN_STEPS = 400  # the sampler's default cap (stein_torch.sample.DEFAULT_STEPS), kept import-free
+
 __all__ = ["main"]
 
 PROG = "stein-torch"
@@ -32,24 +34,23 @@ class _Parser(argparse.ArgumentParser):
         raise UsageError(f"{message} (see '{self.prog} --help')")
 
 
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a positive integer, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected a positive integer, got {value}")
-    return value
+def _int_at_least(minimum: int, what: str):
+    """An argparse type: an integer >= ``minimum``."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a {what} integer, got {text!r}") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"expected a {what} integer, got {value}")
+        return value
+
+    return parse
 
 
-def _seed(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a non-negative integer, got {text!r}") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"expected a non-negative integer, got {value}")
-    return value
+_positive_int = _int_at_least(1, "positive")
+_seed = _int_at_least(0, "non-negative")
 
 
 def _build_parser() -> _Parser:
@@ -79,7 +80,7 @@ def _build_parser() -> _Parser:
     run.add_argument("model", metavar="MODEL.py", help="Python file that defines a stein_torch.Target")
     run.add_argument("--target", default="target", metavar="NAME", help="variable holding the Target (default: target)")
     run.add_argument("--particles", type=_positive_int, default=200, help="particles per ensemble (default: 200)")
-    run.add_argument("--steps", type=_positive_int, default=1000, help="SVGD steps (default: 1000)")
+    run.add_argument("--steps", type=_positive_int, default=RUN_STEPS, help=f"most SVGD steps (default: {RUN_STEPS})")
     run.add_argument("--ensembles", type=_positive_int, default=1, help="independent particle sets (default: 1)")
     run.add_argument("--seed", type=_seed, default=0, help="random seed (default: 0)")
     run.add_argument("--out", metavar="FILE.nc", help="NetCDF output (default: MODEL.nc in the current folder)")

@@ -34,6 +34,7 @@ from typing import Mapping
 import numpy as np
 import torch
 
+from .checks import check_int
 from .precondition import Affine, default_start, find_mode, laplace_affine
 from .result import Result
 from .target import Target
@@ -47,11 +48,7 @@ LAPLACE_MAX_DIM = 1000
 
 
 def _count(value, name: str, minimum: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"langevin: {name} must be an int, got {type(value).__qualname__} ({value!r})")
-    if value < minimum:
-        raise ValueError(f"langevin: {name} == {value}, must be >= {minimum}")
-    return int(value)
+    return check_int(value, f"langevin: {name}", minimum)
 
 
 class _DualAveraging:

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import functools
 import math
-import numbers
 import sys
 import warnings
 from typing import Callable, Mapping
@@ -16,13 +15,13 @@ import numpy as np
 import torch
 
 from . import io
-from .checks import check_device
+from .checks import check_device, check_int
 from .interrupts import InterruptGuard
 from .kernels import IMQ, Kernel, Linear
 from .precondition import Affine, covariance_affine, default_start, find_mode, laplace_affine
 from .result import Result
-from .state import capture_state, restore_state
 from .schedules import as_drive
+from .state import capture_state, restore_state
 from .stein import ksd, svgd_direction
 from .steppers import Optim, Stepper, as_stepper
 from .stopping import StopRule, as_stop_rule
@@ -60,12 +59,7 @@ def default_stepper() -> Stepper:
     return Optim(functools.partial(torch.optim.SGD, lr=0.1), max_move=0.3)
 
 
-def _check_count(value, name: str, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{name} must be an int, got {type(value).__qualname__} ({value!r})")
-    if value < minimum:
-        raise ValueError(f"{name} == {value}, must be >= {minimum}")
-    return int(value)
+_check_count = check_int
 
 
 class _FailuresAsNaN:

@@ -24,15 +24,13 @@ import numbers
 
 import torch
 
+from .checks import check_int
+
 __all__ = ["StopRule", "as_stop_rule"]
 
 
 def _positive_int(value, name: str, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"StopRule: {name} must be an int, got {type(value).__qualname__} ({value!r})")
-    if value < minimum:
-        raise ValueError(f"StopRule: {name} == {value}, must be >= {minimum}")
-    return int(value)
+    return check_int(value, f"StopRule: {name}", minimum)
 
 
 def _nonnegative_float(value, name: str) -> float:

@@ -259,3 +259,11 @@ def test_failed_write_leaves_the_old_file_and_no_temporary(tmp_path):
     # atomic replace (POSIX rename(2) semantics): the old file is intact, no temporary remains
     assert destination.read_bytes() == b"previous result"
     assert [p.name for p in tmp_path.iterdir()] == ["posterior.nc"]
+
+
+def test_run_default_steps_follow_the_sampler_default():
+    # the CLI keeps torch out of its import path, so it repeats the sampler's default cap
+    from stein_torch import cli
+    from stein_torch.sample import DEFAULT_STEPS
+
+    assert cli.RUN_STEPS == DEFAULT_STEPS
