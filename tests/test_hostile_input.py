@@ -266,3 +266,30 @@ def test_checkpoint_every_needs_a_checkpoint():
 def test_resume_beyond_the_requested_steps(good_checkpoint):
     with pytest.raises(ValueError, match="steps: the checkpoint is already at step 1, beyond steps=0"):
         st.sample(TARGET, **{**FAST, "steps": 0, "resume": good_checkpoint})
+
+
+# ---------------------------------------------------------------------- data given with a target
+@CHECK
+@given(lengths=hst.lists(hst.integers(0, 6), min_size=2, max_size=4),
+       batch_size=hst.one_of(hst.none(), hst.integers(-2, 8), hst.just(2.5), hst.just("all")))
+def test_data_of_mismatched_lengths_or_bad_batch_sizes(lengths, batch_size):
+    # every data tensor must share the observation axis; the error names `data` and lists the lengths
+    data = {f"x{i}": torch.zeros(n, 2) for i, n in enumerate(lengths)}
+
+    def log_likelihood(p, d):  # (..., n_obs)
+        return -0.5 * ((d["x0"][..., 0] - p["mu"][..., None]) ** 2)
+
+    same = len(set(lengths)) == 1 and lengths[0] > 0
+    good_batch = batch_size is None or (isinstance(batch_size, int) and 1 <= batch_size <= lengths[0])
+    if same and good_batch:
+        target = st.Target(lambda p: -p["mu"] ** 2, params={"mu": st.Param()}, log_likelihood=log_likelihood,
+                           data=data, batch_size=batch_size)
+        assert target.dim == 1
+        return
+    with pytest.raises((ValueError, TypeError)) as info:
+        st.Target(lambda p: -p["mu"] ** 2, params={"mu": st.Param()}, log_likelihood=log_likelihood,
+                  data=data, batch_size=batch_size)
+    message = str(info.value)
+    assert ("data" in message) or ("batch_size" in message), message
+    if not same and all(n > 0 for n in lengths):
+        assert all(f"'x{i}': {n}" in message for i, n in enumerate(lengths)), message
