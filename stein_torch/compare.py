@@ -26,7 +26,7 @@ import numpy as np
 import torch
 
 from .langevin import langevin
-from .precondition import Affine, default_start, find_mode, laplace_affine
+from .precondition import LAPLACE_MAX_DIM, Affine, default_start, laplace_whitening
 from .sample import DEFAULT_STEPS, Sampler
 from .stein import ksd as kernel_stein_discrepancy
 from .target import Target
@@ -263,12 +263,10 @@ def compare(
 
 def _common_affine(target: Target) -> Affine:
     affine = Affine.identity(target.dim, torch.float64)
-    if target.dim <= 1000:
-        mode, ok = find_mode(target, default_start(target, torch.float64))
-        if ok:
-            candidate, _ = laplace_affine(target, mode)
-            if torch.isfinite(candidate.matrix).all():
-                affine = candidate
+    if target.dim <= LAPLACE_MAX_DIM:
+        candidate, _ = laplace_whitening(target, default_start(target, torch.float64))
+        if candidate is not None and torch.isfinite(candidate.matrix).all():
+            affine = candidate
     return affine
 
 

@@ -29,13 +29,12 @@ import math
 import numbers
 import sys
 import time
-from typing import Mapping
 
 import numpy as np
 import torch
 
 from .checks import check_int
-from .precondition import Affine, default_start, find_mode, laplace_affine
+from .precondition import LAPLACE_MAX_DIM, Affine, default_start, laplace_whitening
 from .result import Result
 from .target import Target
 
@@ -44,7 +43,6 @@ __all__ = ["langevin", "TARGET_ACCEPT"]
 # optimal MALA acceptance ("Optimal scaling of discrete approximations to Langevin diffusions",
 # DOI 10.1111/1467-9868.00123, from memory)
 TARGET_ACCEPT = 0.574
-LAPLACE_MAX_DIM = 1000
 
 
 def _count(value, name: str, minimum: int) -> int:
@@ -162,9 +160,7 @@ def langevin(
     affine = Affine.identity(dim, dtype)
     if precondition == "laplace":
         start = z0.mean(0) if z0 is not None else default_start(target, dtype)
-        mode, ok = find_mode(target, start)
-        if ok:
-            affine, _ = laplace_affine(target, mode)
+        affine = laplace_whitening(target, start)[0] or affine
     u = affine.to_u(z0) if z0 is not None else torch.randn(chains, dim, generator=generator, dtype=dtype)
 
     grad_evals = 0
@@ -258,13 +254,7 @@ def langevin(
 def _initial_z(init, target: Target, chains: int, dtype) -> torch.Tensor | None:
     if init is None or (isinstance(init, str) and init == "laplace"):
         return None
-    if isinstance(init, torch.Tensor):
-        if not target.flat:
-            raise TypeError("init: a named-parameter target takes a dict name -> tensor of constrained values")
-        init = {"x": init}
-    if not isinstance(init, Mapping):
-        raise TypeError(f"init: expected None, a tensor or a dict of tensors, got {type(init).__qualname__}")
-    z = target.unconstrain({k: torch.as_tensor(v, dtype=dtype) for k, v in init.items()}, "init").to(dtype)
+    z = target.init_to_free(init, dtype)
     if tuple(z.shape[:-1]) != (chains,):
         raise ValueError(f"init: expected leading shape (chains,) = ({chains},); got {tuple(z.shape[:-1])}")
     return z

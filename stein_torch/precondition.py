@@ -15,7 +15,9 @@ import torch
 
 from .target import Target
 
-__all__ = ["Affine", "find_mode", "hessian", "laplace_affine", "covariance_affine"]
+__all__ = ["Affine", "find_mode", "hessian", "laplace_affine", "laplace_whitening", "covariance_affine", "LAPLACE_MAX_DIM"]
+
+LAPLACE_MAX_DIM = 1000  # dense Hessian whitening up to this many coordinates
 
 
 @dataclass
@@ -159,6 +161,44 @@ def _cholesky(cov: torch.Tensor) -> torch.Tensor:
         if not bool((info != 0).any()):
             return chol
     return torch.diag_embed(torch.diagonal(cov, dim1=-2, dim2=-1).clamp_min(1e-300).sqrt())
+
+
+class _FailuresAsNaN:
+    """A view of a target whose evaluation errors read as NaN, for the mode search.
+
+    A log density that raises outside the region where it is defined (e.g. a distribution's
+    argument validation) must not stop the set-up; the mode search then treats the point like any
+    other non-finite one.
+    """
+
+    def __init__(self, target: Target):
+        self._target = target
+
+    def __getattr__(self, name):
+        return getattr(self._target, name)
+
+    def log_prob_and_score(self, z):
+        try:
+            return self._target.log_prob_and_score(z)
+        except Exception:
+            nan = torch.full(z.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
+            return nan, torch.full_like(z, float("nan"))
+
+    def log_prob(self, z):
+        return self.log_prob_and_score(z)[0]
+
+
+def laplace_whitening(target: Target, start: torch.Tensor) -> tuple[Affine | None, bool]:
+    """Mode by L-BFGS from ``start`` (dim,), then whitening by the curvature there.
+
+    Errors raised by the log density read as NaN. Returns ``(None, False)`` when no finite mode was
+    found, else the affine map and whether the Hessian was negative definite.
+    """
+    safe = _FailuresAsNaN(target)
+    mode, ok = find_mode(safe, start)
+    if not ok:
+        return None, False
+    return laplace_affine(safe, mode)
 
 
 def covariance_affine(u: torch.Tensor, affine: Affine) -> Affine:

@@ -6,7 +6,6 @@ Data flow: Target -> coordinates (whitening) -> loop of [scores -> SVGD directio
 from __future__ import annotations
 
 import functools
-import math
 import sys
 import warnings
 from typing import Callable, Mapping
@@ -18,7 +17,7 @@ from . import io
 from .checks import check_device, check_int
 from .interrupts import InterruptGuard
 from .kernels import IMQ, Kernel, Linear
-from .precondition import Affine, covariance_affine, default_start, find_mode, laplace_affine
+from .precondition import LAPLACE_MAX_DIM, Affine, covariance_affine, default_start, laplace_whitening
 from .result import Result
 from .schedules import as_drive
 from .state import capture_state, restore_state
@@ -31,7 +30,6 @@ __all__ = ["sample", "Sampler", "default_kernel", "default_stepper"]
 
 MAX_BACKTRACK = 10  # halvings of a faulty particle's step before it is put back where it was
 FAULT_PATIENCE = 25  # consecutive steps with faults before the run gives up
-LAPLACE_MAX_DIM = 1000  # dense Hessian whitening up to this many coordinates
 DEFAULT_STEPS = 400  # most steps of a default run (the stop rule usually ends it at 300-400)
 REWHITEN_FIRST = 25  # re-whiten by the particles' covariance at steps 25, 50, 100, 200, ...
 PRECONDITIONS = ("auto", "laplace", "covariance", None)
@@ -60,31 +58,6 @@ def default_stepper() -> Stepper:
 
 
 _check_count = check_int
-
-
-class _FailuresAsNaN:
-    """A view of a target whose evaluation errors read as NaN, for the mode search.
-
-    A log density that raises outside the region where it is defined (e.g. a distribution's
-    argument validation) must not stop the set-up; the mode search then treats the point like any
-    other non-finite one.
-    """
-
-    def __init__(self, target: Target):
-        self._target = target
-
-    def __getattr__(self, name):
-        return getattr(self._target, name)
-
-    def log_prob_and_score(self, z):
-        try:
-            return self._target.log_prob_and_score(z)
-        except Exception:
-            nan = torch.full(z.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
-            return nan, torch.full_like(z, float("nan"))
-
-    def log_prob(self, z):
-        return self.log_prob_and_score(z)[0]
 
 
 class Sampler:
@@ -174,10 +147,9 @@ class Sampler:
         self.laplace_ok = False
         if self.precondition == "laplace":
             start = user_init.reshape(-1, dim).mean(0) if user_init is not None else default_start(t, self.dtype, self.device)
-            mode, ok = find_mode(_FailuresAsNaN(t), start)
-            if ok:
-                self.affine, self.laplace_ok = laplace_affine(_FailuresAsNaN(t), mode)
-                self.affine.shift = mode
+            affine, self.laplace_ok = laplace_whitening(t, start)
+            if affine is not None:
+                self.affine = affine
         shape = (self.ensembles, self.n, dim)
         if user_init is not None:
             u = self.affine.to_u(user_init)
@@ -214,13 +186,7 @@ class Sampler:
             return None
         if isinstance(init, str):
             raise ValueError(f"init must be None, 'prior', 'laplace', a tensor or a dict of tensors; got {init!r}")
-        if isinstance(init, torch.Tensor):
-            if not t.flat:
-                raise TypeError("init: a named-parameter target takes a dict name -> tensor of constrained values")
-            init = {"x": init}
-        if not isinstance(init, Mapping):
-            raise TypeError(f"init: expected a tensor or dict of tensors, got {type(init).__qualname__}")
-        z = t.unconstrain({k: self._init_values(k, v) for k, v in init.items()}, "init")
+        z = t.init_to_free(init, self.dtype, self.device)
         if z.dim() == 2 and self.ensembles == 1:
             z = z[None]
         if tuple(z.shape[:-1]) != (self.ensembles, self.n):
@@ -228,21 +194,7 @@ class Sampler:
                 f"init: expected leading shape (particles,) = ({self.n},) or (ensembles, particles) = "
                 f"({self.ensembles}, {self.n}); got {tuple(z.shape[:-1])}"
             )
-        return z.to(self.dtype).to(self.device)
-
-    def _init_values(self, name, value) -> torch.Tensor:
-        """One entry of a user ``init``: real numbers on a usable device, in the sampler's dtype."""
-        try:
-            v = torch.as_tensor(value)
-        except (TypeError, ValueError, RuntimeError):
-            raise TypeError(
-                f"init[{name!r}]: expected a tensor or array of numbers, got {type(value).__qualname__}"
-            ) from None
-        if v.device.type == "meta":
-            raise ValueError(f"init[{name!r}]: a 'meta' tensor holds no values")
-        if v.is_complex() or v.dtype == torch.bool:
-            raise TypeError(f"init[{name!r}]: expected real numbers, got dtype {v.dtype}")
-        return v.to(dtype=self.dtype, device=self.device)
+        return z
 
     # ------------------------------------------------------------------ evaluation
     def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None, first: bool = False):
@@ -623,5 +575,3 @@ def sample(
     sampler.run(steps - sampler.step_count, progress=progress, checkpoint=checkpoint, checkpoint_every=checkpoint_every)
     return sampler.result()
 
-
-_ = math

@@ -438,6 +438,39 @@ class Target:
             score = torch.zeros_like(z)
         return lp.detach(), score
 
+    def init_to_free(self, init, dtype: torch.dtype, device=None, argname: str = "init") -> torch.Tensor:
+        """Starting values given by a user as unconstrained coordinates.
+
+        Parameters
+        ----------
+        init : Tensor or dict of str to Tensor
+            Constrained values: a tensor of shape (..., dim) for a flat target, else name -> (..., *shape).
+
+        Returns
+        -------
+        Tensor of shape (..., dim), in ``dtype`` on ``device``.
+        """
+        if isinstance(init, torch.Tensor):
+            if not self.flat:
+                raise TypeError(f"{argname}: a named-parameter target takes a dict name -> tensor of constrained values")
+            init = {"x": init}
+        if not isinstance(init, Mapping):
+            raise TypeError(f"{argname}: expected a tensor or dict of tensors, got {type(init).__qualname__}")
+        values = {}
+        for name, value in init.items():
+            try:
+                v = torch.as_tensor(value)
+            except (TypeError, ValueError, RuntimeError):
+                raise TypeError(
+                    f"{argname}[{name!r}]: expected a tensor or array of numbers, got {type(value).__qualname__}"
+                ) from None
+            if v.device.type == "meta":
+                raise ValueError(f"{argname}[{name!r}]: a 'meta' tensor holds no values")
+            if v.is_complex() or v.dtype == torch.bool:
+                raise TypeError(f"{argname}[{name!r}]: expected real numbers, got dtype {v.dtype}")
+            values[name] = v.to(dtype=dtype, device=device)
+        return self.unconstrain(values, argname).to(dtype=dtype, device=device)
+
     def draw_initial(self, n: int, generator: torch.Generator) -> dict:
         """Draw ``n`` constrained starting values from ``initial`` (for ``init="prior"``)."""
         if self.initial is None:

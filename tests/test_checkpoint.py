@@ -73,8 +73,7 @@ def test_resume_restores_the_setup_instead_of_recomputing_it(tmp_path, monkeypat
     def no_setup(*args, **kwargs):
         raise AssertionError("the mode search ran again on resume")
 
-    monkeypatch.setattr(sample_module, "find_mode", no_setup)
-    monkeypatch.setattr(sample_module, "laplace_affine", no_setup)
+    monkeypatch.setattr(sample_module, "laplace_whitening", no_setup)  # mode search + Laplace whitening
     resumed = st.sample(make_target(), steps=STEPS, resume=path, **{**RUN, "seed": None})  # seed from the file
     assert_same_run(resumed, uninterrupted())
 
