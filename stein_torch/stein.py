@@ -90,8 +90,7 @@ def radial_direction(
             continue
         s = neg_s.neg_().clamp_min_(0)
         k, g = kernel.profile(s)
-        if kernel.singular:  # the self-pair has zero displacement: it contributes nothing
-            g = torch.where(s > 0, g, torch.zeros_like(g))
+        if kernel.singular:  # profile() keeps f' finite near 0; the self-pair (zero displacement) is exactly 0
             idx = torch.arange(a, b, device=x.device)
             g[:, idx - a, idx] = 0
         ks = torch.bmm(k, rhs[..., :d])
