@@ -120,6 +120,27 @@ class ObservedData:
         self.indices = self._order[self._position : self._position + self.batch_size]
         self._position += self.batch_size
 
+    def state_dict(self) -> dict:
+        """Position in the minibatch stream (shuffle generator, current order, epoch), for checkpoints."""
+        if self.batch_size is None:
+            return {}
+        return {
+            "generator": None if self._generator is None else self._generator.get_state(),
+            "order": None if self._order is None else self._order.clone(),
+            "position": self._position,
+            "epoch": self.epoch,
+        }
+
+    def load_state_dict(self, state: dict) -> None:
+        """Continue the minibatch stream where :meth:`state_dict` left it."""
+        if self.batch_size is None or not state:
+            return
+        if state["generator"] is not None:
+            self._generator = torch.Generator()
+            self._generator.set_state(state["generator"])
+        self._order = state["order"]
+        self._position, self.epoch = int(state["position"]), int(state["epoch"])
+
     @contextlib.contextmanager
     def next_batch(self):
         """Context of one sampler step: the next minibatch in use, the full data again on exit."""

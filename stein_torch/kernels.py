@@ -32,6 +32,7 @@ positive number, in the sampler's (whitened) coordinates.
 
 from __future__ import annotations
 
+import functools
 import math
 import numbers
 
@@ -42,6 +43,7 @@ __all__ = [
 ]
 
 MEDIAN_PAIRS = 1 << 12  # pairs used by the median heuristic (relative error ~1-4%); all pairs when fewer exist
+PAIR_DESIGN_SEED = 0  # seed of the fixed set of pairs used when no generator is given
 MEDIAN_BLOCK = 1 << 16  # entries of the (pairs, d) differences formed at once by the median heuristic
 GUARD = 1e-4  # scaled squared distance below which singular kernels cap the pairwise term (r = 0.01 sqrt(h))
 
@@ -86,7 +88,9 @@ def squared_distances(x: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
     return d2.clamp_min_(0)
 
 
-def median_bandwidth(x: torch.Tensor, generator: torch.Generator | None = None) -> torch.Tensor:
+def median_bandwidth(
+    x: torch.Tensor, generator: torch.Generator | None = None, distances: torch.Tensor | None = None
+) -> torch.Tensor:
     """Median heuristic h = med_{i<j} |x_i - x_j|^2 / log(N + 1) per batch (arXiv:1608.04471).
 
     Exact over all pairs for small N; over ``MEDIAN_PAIRS`` random pairs otherwise.
@@ -94,6 +98,13 @@ def median_bandwidth(x: torch.Tensor, generator: torch.Generator | None = None) 
     Parameters
     ----------
     x : Tensor of shape (..., N, d)
+    generator : torch.Generator, optional
+        Draws fresh random pairs. None (the sampler's choice): a fixed random set of pairs for each
+        N, the same at every call, so the bandwidth does not jitter from step to step and costs no
+        random draws (particle labels carry no meaning, so a fixed set is as good as a fresh one).
+    distances : Tensor of shape (..., N, N), optional
+        The squared distances |x_i - x_j|^2, when the caller has them already: the pairs are read
+        from it instead of being computed (same pairs, same random draws).
 
     Returns
     -------
@@ -102,13 +113,17 @@ def median_bandwidth(x: torch.Tensor, generator: torch.Generator | None = None) 
     n = x.shape[-2]
     if n < 2:
         return torch.ones(x.shape[:-2], dtype=x.dtype, device=x.device)
-    if n * (n - 1) // 2 <= MEDIAN_PAIRS:  # all pairs, from one Gram matrix (matmul, ~5x faster)
-        centred = x - x.mean(-2, keepdim=True)  # distances do not move; centring keeps |a|^2+|b|^2-2ab accurate
+    if n * (n - 1) // 2 <= MEDIAN_PAIRS:  # all pairs
         i, j = torch.triu_indices(n, n, offset=1, device=x.device)
-        d2 = squared_distances(centred, centred).flatten(-2).index_select(-1, i * n + j)
-        return _median_rule(d2, n)
-    i = torch.randint(n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)
-    j = (i + torch.randint(1, n, (MEDIAN_PAIRS,), generator=generator, device="cpu").to(x.device)) % n
+        if distances is None:  # from one Gram matrix (matmul, ~5x faster than differences)
+            centred = x - x.mean(-2, keepdim=True)  # distances do not move; centring keeps |a|^2+|b|^2-2ab accurate
+            distances = squared_distances(centred, centred)
+        return _median_rule(distances.flatten(-2).index_select(-1, i * n + j), n)
+    i, j = _random_pairs(n, generator) if generator is not None else _pair_design(n)
+    i, j = i.to(x.device), j.to(x.device)
+    if distances is not None:
+        flat = _flat_design(n) if generator is None else i * n + j
+        return _median_rule(distances.flatten(-2).index_select(-1, flat.to(x.device)), n)
     # In blocks of pairs with index_select (not x[..., i, :]): same values, but small temporaries
     # that the allocator reuses instead of fresh pages for (pairs, d) arrays (10-20x faster here).
     d2 = torch.empty((*x.shape[:-2], i.numel()), dtype=x.dtype, device=x.device)
@@ -118,6 +133,26 @@ def median_bandwidth(x: torch.Tensor, generator: torch.Generator | None = None) 
         diff = x.index_select(-2, ia).sub_(x.index_select(-2, ja))
         d2[..., a : a + block] = diff.mul_(diff).sum(-1)
     return _median_rule(d2, n)
+
+
+def _random_pairs(n: int, generator: torch.Generator | None) -> tuple[torch.Tensor, torch.Tensor]:
+    """``MEDIAN_PAIRS`` uniform random pairs (i, j), i != j, of N particles."""
+    i = torch.randint(n, (MEDIAN_PAIRS,), generator=generator)
+    j = (i + torch.randint(1, n, (MEDIAN_PAIRS,), generator=generator)) % n
+    return i, j
+
+
+@functools.lru_cache(maxsize=16)
+def _pair_design(n: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """The fixed pairs used for N particles when no generator is given."""
+    return _random_pairs(n, torch.Generator().manual_seed(PAIR_DESIGN_SEED))
+
+
+@functools.lru_cache(maxsize=16)
+def _flat_design(n: int) -> torch.Tensor:
+    """The fixed pairs as indices into a flattened N x N matrix."""
+    i, j = _pair_design(n)
+    return i * n + j
 
 
 def _median_rule(d2: torch.Tensor, n: int) -> torch.Tensor:
@@ -167,10 +202,27 @@ class RadialKernel(Kernel):
         """Return f''(s), elementwise."""
         raise NotImplementedError
 
-    def bandwidth_for(self, x: torch.Tensor, generator: torch.Generator | None = None) -> torch.Tensor:
-        """Bandwidth h per batch for particles x (..., N, d) -> (...)."""
+    def profile_(self, s: torch.Tensor, scratch) -> tuple[torch.Tensor, torch.Tensor]:
+        """:meth:`profile` for the SVGD engine, which owns ``s`` and lets it be overwritten.
+
+        ``scratch`` (a :class:`stein_torch.stein.Scratch`) lends reusable buffers. Kernels with a
+        cheap closed form compute in place; the default allocates like :meth:`profile`.
+        """
+        return self.profile(s)
+
+    def stein_terms_(self, s: torch.Tensor, scratch) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        """f(s), f'(s) and sum over the last two axes of f''(s) s, for the kernel Stein discrepancy;
+        ``s`` (..., n, m) may be overwritten, ``scratch`` as in :meth:`profile_`."""
+        f, g = self.profile(s)
+        return f, g, (self.curvature(s) * s).sum((-2, -1))
+
+    def bandwidth_for(
+        self, x: torch.Tensor, generator: torch.Generator | None = None, distances: torch.Tensor | None = None
+    ) -> torch.Tensor:
+        """Bandwidth h per batch for particles x (..., N, d) -> (...); ``distances`` as in
+        :func:`median_bandwidth`."""
         if self.bandwidth == "median":
-            h = median_bandwidth(x, generator)
+            h = median_bandwidth(x, generator, distances)
         else:
             h = torch.full(x.shape[:-2], self.bandwidth, dtype=x.dtype, device=x.device)
         self.last_bandwidth = h
@@ -244,6 +296,22 @@ class IMQ(RadialKernel):
     def curvature(self, s):
         base = self.c**2 + s
         return self.beta * (self.beta - 1) * base.pow(self.beta - 2)
+
+    # beta = -1/2: f = (c^2 + s)^(-1/2), f' = -f^3 / 2, f'' = 3 f^5 / 4, in place and in scratch buffers
+    def profile_(self, s, scratch):
+        if self.beta != -0.5:
+            return self.profile(s)
+        f = s.add_(self.c**2).rsqrt_()
+        g = torch.mul(f, f, out=scratch.buffer("fprime", f))
+        return f, g.mul_(f).mul_(self.beta)
+
+    def stein_terms_(self, s, scratch):
+        if self.beta != -0.5:
+            return super().stein_terms_(s, scratch)
+        f = torch.add(s, self.c**2, out=scratch.buffer("value", s)).rsqrt_()
+        g = torch.mul(f, f, out=scratch.buffer("fprime", s)).mul_(f)  # f^3
+        curvature_s = s.mul_(g).mul_(f).mul_(f).sum((-2, -1)).mul_(0.75)  # sum of 3/4 f^5 s
+        return f, g.mul_(-0.5), curvature_s
 
     def state_dict(self):
         return {**super().state_dict(), "c": self.c, "beta": self.beta}
@@ -388,12 +456,12 @@ class Linear(Kernel):
 
 def standardizer(x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Particle mean and sd (..., 1, d) used by :class:`Linear`; sd floored to stay positive."""
-    if x.shape[-2] > 1:
-        scale, center = torch.std_mean(x, -2, keepdim=True)
-    else:
-        center = x.mean(-2, keepdim=True)
-        scale = torch.ones_like(center)
-    floor = 1e-8 * scale.amax(-1, keepdim=True).clamp_min(1.0)
+    center = x.mean(-2, keepdim=True)
+    if x.shape[-2] < 2:
+        return center, torch.ones_like(center)
+    centred = x - center
+    scale = (centred * centred).sum(-2, keepdim=True).div_(x.shape[-2] - 1).sqrt_()
+    floor = scale.amax(-1, keepdim=True).clamp_min_(1.0).mul_(1e-8)
     return center, torch.maximum(scale, floor)
 
 

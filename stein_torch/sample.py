@@ -5,7 +5,6 @@ Data flow: Target -> coordinates (whitening) -> loop of [scores -> SVGD directio
 
 from __future__ import annotations
 
-import functools
 import sys
 import warnings
 from typing import Callable, Mapping
@@ -21,8 +20,8 @@ from .precondition import LAPLACE_MAX_DIM, Affine, covariance_affine, default_st
 from .result import Result
 from .schedules import as_drive
 from .state import capture_state, restore_state
-from .stein import ksd, svgd_direction
-from .steppers import Optim, Stepper, as_stepper
+from .stein import Scratch, ksd, svgd_direction
+from .steppers import GradientStep, Stepper, as_stepper
 from .stopping import StopRule, as_stop_rule
 from .target import Target
 
@@ -54,7 +53,7 @@ def default_stepper() -> Stepper:
     (Adam, RMSprop) keep a jitter of the size of their step and, on heavy-tailed posteriors, were
     seen to let tail particles wander (README, "Choosing the defaults").
     """
-    return Optim(functools.partial(torch.optim.SGD, lr=0.1), max_move=0.3)
+    return GradientStep(0.1, max_move=0.3)
 
 
 _check_count = check_int
@@ -120,8 +119,10 @@ class Sampler:
                 raise ValueError(f"seed == {seed}, must be < 2**64")
         self.seed = int(seed) if seed is not None else int(torch.seed() % (2**63))
         self.generator = torch.Generator().manual_seed(self.seed)
-        if getattr(target, "data", None) is not None:  # minibatch shuffles: their own stream from the seed
-            target.data.start(torch.Generator().manual_seed(self.seed + 1))
+        self._scratch = Scratch()  # pairwise buffers reused by every step's direction and KSD
+        self.data_stream = getattr(target, "data", None)  # its state_dict makes checkpoints resume the minibatches
+        if self.data_stream is not None:  # minibatch shuffles: their own stream from the seed
+            self.data_stream.start(torch.Generator().manual_seed(self.seed + 1))
         self.init = init
         self.stop_rule = as_stop_rule(stop)
         self.ksd_every = self.stop_rule.every if self.stop_rule is not None else 10
@@ -221,7 +222,9 @@ class Sampler:
             lp = torch.full(z.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
             sz = torch.full_like(z, float("nan"))
             lp[mask], sz[mask] = lp_s, sz_s
-        bad = ~(torch.isfinite(lp) & torch.isfinite(sz).all(-1) & torch.isfinite(z).all(-1))
+        # NaN/inf anywhere in a particle's position or score reaches its sum, and 0 * sum is NaN then
+        # (also when a sum overflows, i.e. |values| near 1e308: faulty too)
+        bad = ~torch.isfinite(lp + 0 * (sz.sum(-1) + z.sum(-1)))
         return lp, self.affine.score_u(sz), bad
 
     def _evaluate_one_by_one(self, z):
@@ -239,7 +242,8 @@ class Sampler:
 
     def direction(self, u, score, lp) -> torch.Tensor:
         """The SVGD direction at particles u (B, N, d) with whitened scores."""
-        return svgd_direction(u, score, self.kernel, drive=self.drive(self.step_count), log_prob=lp, generator=self.generator)
+        # no generator: the median heuristic uses its fixed pairs (no step-to-step bandwidth jitter)
+        return svgd_direction(u, score, self.kernel, drive=self.drive(self.step_count), log_prob=lp, scratch=self._scratch)
 
     def _velocity(self, u):
         lp, score, bad = self._evaluate(u)
@@ -351,7 +355,7 @@ class Sampler:
     def ksd(self) -> torch.Tensor:
         """KSD (V-statistic, IMQ c = 1, beta = -1/2, h = 1) of each ensemble on the whitened
         coordinates u, shape (ensembles,); see :mod:`stein_torch.stopping`."""
-        return ksd(self.u, self.score)
+        return ksd(self.u, self.score, scratch=self._scratch)
 
     def run(
         self, steps: int, progress: bool | None = None, *, checkpoint=None, checkpoint_every: int | None = None

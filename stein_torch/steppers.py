@@ -4,6 +4,8 @@ A stepper receives the particles u (ensembles, particles, dim), the direction ph
 ``velocity`` callable that evaluates phi at other positions (used by multi-stage integrators), and
 returns the new particles.
 
+:class:`GradientStep` moves every particle by lr * phi, with an optional cap on each particle's
+move (the default rule; one score evaluation per step);
 :class:`Optim` wraps any :mod:`torch.optim` optimizer (one score evaluation per step);
 :class:`Adaptive` integrates the particle ODE du/dt = phi(u) with an embedded Runge-Kutta pair and
 error control (several score evaluations per step, step size chosen for a given accuracy).
@@ -18,7 +20,7 @@ from typing import Callable
 
 import torch
 
-__all__ = ["Stepper", "Optim", "Adaptive", "as_stepper", "TABLEAUX", "rk_attempt"]
+__all__ = ["Stepper", "GradientStep", "Optim", "Adaptive", "as_stepper", "TABLEAUX", "rk_attempt"]
 
 
 class Stepper:
@@ -46,6 +48,68 @@ class Stepper:
         pass
 
 
+def _positive(value, name: str, owner: str = "Adaptive") -> float:
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{owner}: {name} must be a positive number, got {type(value).__qualname__}")
+    if not (value > 0):  # also rejects NaN
+        raise ValueError(f"{owner}: {name} == {value!r}, must be > 0")
+    return float(value)
+
+
+def _check_max_move(max_move, owner: str):
+    if max_move is None:
+        return None
+    if isinstance(max_move, bool) or not isinstance(max_move, numbers.Real) or not (math.isfinite(max_move) and max_move > 0):
+        raise ValueError(f"{owner}: max_move must be a positive number or None, got {max_move!r}")
+    return float(max_move)
+
+
+def _capped(phi: torch.Tensor, lr: float, max_move: float | None) -> torch.Tensor:
+    """phi scaled down, per particle, so that lr * |phi| <= max_move (unchanged without a cap)."""
+    if max_move is None:
+        return phi
+    move = lr * torch.linalg.vector_norm(phi, dim=-1, keepdim=True)
+    return phi * (max_move / move.clamp_min_(max_move))
+
+
+class GradientStep(Stepper):
+    """Plain steps u <- u + lr * phi, no particle moving more than ``max_move`` in one step.
+
+    The same update as ``torch.optim.SGD(lr=lr)`` ascending along phi, without an optimizer
+    object around it (its per-call bookkeeping cost a tenth of a default step).
+
+    Parameters
+    ----------
+    lr : float, default=0.1
+        Step size, in the sampler's (whitened) coordinates.
+    max_move : float, optional
+        Largest distance a particle moves in one step; a particle whose lr * |phi| is larger moves
+        that far along phi.
+    """
+
+    def __init__(self, lr: float = 0.1, *, max_move: float | None = None):
+        self.lr = _positive(lr, "lr", "GradientStep")
+        self.max_move = _check_max_move(max_move, "GradientStep")
+
+    def step(self, u, phi, velocity):
+        return u + self.lr * _capped(phi, self.lr, self.max_move)
+
+    @property
+    def step_size(self) -> float:
+        return self.lr
+
+    def state_dict(self):
+        return {"lr": self.lr, "max_move": self.max_move}
+
+    def load_state_dict(self, state):
+        if state:
+            self.lr, self.max_move = state["lr"], state["max_move"]
+
+    def __repr__(self):
+        cap = "" if self.max_move is None else f", max_move={self.max_move}"
+        return f"GradientStep(lr={self.lr}{cap})"
+
+
 class Optim(Stepper):
     """Any :mod:`torch.optim` optimizer, ascending along phi (it is given grad = -phi).
 
@@ -64,10 +128,8 @@ class Optim(Stepper):
     def __init__(self, optimizer: Callable, *, max_move: float | None = None):
         if not callable(optimizer):
             raise TypeError(f"Optim: optimizer must be callable (params -> Optimizer), got {type(optimizer).__qualname__}")
-        if max_move is not None and not (isinstance(max_move, (int, float)) and math.isfinite(max_move) and max_move > 0):
-            raise ValueError(f"Optim: max_move must be a positive number or None, got {max_move!r}")
         self.factory = optimizer
-        self.max_move = max_move
+        self.max_move = _check_max_move(max_move, "Optim")
         self.optimizer = None
         self._param = None
 
@@ -88,10 +150,7 @@ class Optim(Stepper):
     def step(self, u, phi, velocity):
         with torch.no_grad():
             self._param.copy_(u)
-        if self.max_move is not None:  # for plain gradient steps: no particle moves more than max_move
-            move = self.step_size * phi.norm(dim=-1, keepdim=True)
-            phi = phi * (self.max_move / move.clamp_min(self.max_move))
-        self._param.grad = -phi
+        self._param.grad = -_capped(phi, self.step_size, self.max_move)  # the cap assumes plain gradient steps
         self.optimizer.step()
         return self._param.detach().clone()
 
@@ -174,14 +233,6 @@ def rk_attempt(u: torch.Tensor, k1: torch.Tensor, h: float, velocity: Callable, 
     u_new = stage  # FSAL: the last row of a equals b
     error = h * sum((b - bh) * k for b, bh, k in zip(tab["b"], tab["b_hat"], ks))
     return u_new, error, ks[-1]
-
-
-def _positive(value, name: str, owner: str = "Adaptive") -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{owner}: {name} must be a positive number, got {type(value).__qualname__}")
-    if not (value > 0):  # also rejects NaN
-        raise ValueError(f"{owner}: {name} == {value!r}, must be > 0")
-    return float(value)
 
 
 class Adaptive(Stepper):

@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 from typing import Callable, Mapping
 
 import torch
-from torch.distributions import Distribution, biject_to, constraints
+from torch.distributions import Distribution, biject_to, constraints, transforms
 
 __all__ = ["Param", "Target"]
 
@@ -78,6 +78,10 @@ class _Block:
         self.shape = torch.Size(spec.shape)
         self.constraint = spec.constraint
         self.transform = biject_to(spec.constraint)
+        inner = self.transform
+        while isinstance(inner, transforms.IndependentTransform):
+            inner = inner.base_transform
+        self.identity = inner == transforms.identity_transform  # real line: no transform, no Jacobian
         self.free_shape = torch.Size(self.transform.inverse_shape(self.shape))
         self.start = start
         self.size = math.prod(self.free_shape)
@@ -266,6 +270,9 @@ class Target:
         values, log_jac = {}, torch.zeros(z.shape[:-1], dtype=z.dtype, device=z.device)
         for b in self.blocks:
             free = z[..., b.start : b.start + b.size].reshape(*z.shape[:-1], *b.free_shape)
+            if b.identity:
+                values[b.name] = free
+                continue
             value = b.transform(free)
             ladj = b.transform.log_abs_det_jacobian(free, value)
             extra = ladj.dim() - (z.dim() - 1)

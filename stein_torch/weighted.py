@@ -91,7 +91,7 @@ class TargetWeighted(Kernel):
         k = self.base(x, y, bandwidth=bandwidth)
         return k * torch.exp(-0.5 * (log_prob_x[..., :, None] + log_prob_y[..., None, :]))
 
-    def stein_direction(self, x, s, *, drive=1.0, log_prob=None, generator=None, chunk_elements=None):
+    def stein_direction(self, x, s, *, drive=1.0, log_prob=None, generator=None, chunk_elements=None, scratch=None):
         """SVGD direction (B, N, d) for particles x and scores s of shape (B, N, d).
 
         Parameters
@@ -106,9 +106,8 @@ class TargetWeighted(Kernel):
         if log_prob.shape != x.shape[:-1]:
             raise ValueError(f"TargetWeighted: log_prob must have shape {tuple(x.shape[:-1])}; got {tuple(log_prob.shape)}")
         w = target_weights(log_prob.to(x.dtype))
-        h = self.base.bandwidth_for(x, generator)
         return radial_direction(
-            x, s, self.base, h, score_coef=drive - 0.5, weights=w,
+            x, s, self.base, score_coef=drive - 0.5, weights=w, generator=generator, scratch=scratch,
             chunk_elements=CHUNK_ELEMENTS if chunk_elements is None else chunk_elements,
         )
 

@@ -2,7 +2,7 @@
 
 The model is a small hierarchical-style regression of invented data (named parameters, one of them
 positive), run as two ensembles with the default kernel, stepper and Laplace whitening, so the state
-covers whitening, optimizer moments, generator and trace.
+covers whitening, optimizer moments, generator, minibatch stream and trace.
 """
 
 import functools
@@ -89,28 +89,38 @@ def test_periodic_checkpoints_continue_the_same_run(tmp_path):
     assert_same_run(extended, longer)
 
 
-def test_generator_and_optimizer_state_are_part_of_the_resume(tmp_path):
-    # 260 particles: the median heuristic then uses random pairs drawn from the sampler's generator;
-    # Adam: a step rule with moments (the default gradient step keeps no state)
-    adam = functools.partial(torch.optim.Adam, lr=0.05)
-    big = dict(particles=260, seed=8, precondition=None, stepper=adam)
-    target = st.Target(lambda x: -0.5 * (x**2 / torch.tensor([1.0, 4.0], dtype=x.dtype)).sum(-1), dim=2)
-    full = st.sample(target, steps=6, **big)
-    path = tmp_path / "run.pt"
-    st.sample(target, steps=3, checkpoint=path, **big)
-    assert torch.equal(st.sample(target, steps=6, resume=path, **big).particles, full.particles)
+def make_minibatch_target():
+    """The regression above with its data attached, scored on minibatches of 8 of the 20 points."""
+    g = torch.Generator().manual_seed(11)
+    x = torch.linspace(-1, 1, 20, dtype=torch.float64)
+    y = 0.7 + 1.3 * x + 0.4 * torch.randn(20, generator=g, dtype=torch.float64)
 
-    # controls: the same checkpoint with the generator or the optimizer moments dropped gives other draws
+    def log_likelihood(p, data):
+        mean = p["a"][..., None] + p["b"][..., None] * data["x"]
+        return Normal(mean, p["sigma"][..., None]).log_prob(data["y"])
+
+    five, two = torch.tensor(5.0, dtype=torch.float64), torch.tensor(2.0, dtype=torch.float64)
+    priors = {"a": Normal(0.0 * five, five), "b": Normal(0.0 * five, five), "sigma": HalfNormal(two)}
+    return st.Target.from_priors(priors, log_likelihood, data={"x": x, "y": y}, batch_size=8, observed="y")
+
+
+@pytest.mark.parametrize("part", ["stepper", "data_stream"])
+def test_optimizer_moments_and_minibatch_stream_are_part_of_the_resume(tmp_path, part):
+    # Adam: a step rule with moments (the default gradient step keeps none); minibatches of 8 from 20
+    # observations: the shuffle generator, order and position within the epoch
+    adam = functools.partial(torch.optim.Adam, lr=0.05)
+    run = dict(particles=20, seed=8, precondition=None, stepper=adam)
+    full = st.sample(make_minibatch_target(), steps=8, **run)
+    path = tmp_path / "run.pt"
+    st.sample(make_minibatch_target(), steps=3, checkpoint=path, **run)
+    assert torch.equal(st.sample(make_minibatch_target(), steps=8, resume=path, **run).particles, full.particles)
+
+    # control: the same checkpoint with that part's state dropped gives other draws
     state = st_io.load_checkpoint(path)
-    for key, value in (("generator", torch.Generator().manual_seed(1).get_state()), ("stepper", {})):
-        broken = dict(state, components=dict(state["components"]))
-        if key == "generator":
-            broken["generator"] = value
-        else:
-            broken["components"]["stepper"] = value
-        st_io.save_checkpoint(tmp_path / f"no_{key}.pt", broken)
-        other = st.sample(target, steps=6, resume=tmp_path / f"no_{key}.pt", **big)
-        assert not torch.equal(other.particles, full.particles), key
+    broken = dict(state, components={**state["components"], part: {}})
+    st_io.save_checkpoint(tmp_path / "broken.pt", broken)
+    other = st.sample(make_minibatch_target(), steps=8, resume=tmp_path / "broken.pt", **run)
+    assert not torch.equal(other.particles, full.particles)
 
 
 @pytest.mark.parametrize(

@@ -130,18 +130,20 @@ def _settings(kernel):
     return {k: v for k, v in kernel.state_dict().items() if k != "bandwidth"}
 
 
-def test_linear_direction_matches_double_sum():
-    # Linear kernel on standardised coordinates k = x~.y~ + 1, double sum by autograd with the
-    # standardisation held fixed (moment-matching kernel, arXiv:1810.11693, from memory).
+@pytest.mark.parametrize("radius", [None, 2.0, 0.5])
+def test_linear_direction_matches_double_sum(radius):
+    # Linear kernel on standardised coordinates k = f(x).f(y) + 1 (f = x~, or the saturating
+    # features x~ / sqrt(1 + |x~|^2 / (r^2 d))), double sum by autograd with the standardisation held
+    # fixed (moment-matching kernel, arXiv:1810.11693, from memory).
     g = torch.Generator().manual_seed(3)
-    x, s = torch.randn(9, 4, generator=g), torch.randn(9, 4, generator=g)
+    x, s = torch.randn(9, 4, generator=g, dtype=torch.float64), torch.randn(9, 4, generator=g, dtype=torch.float64)
     center, scale = x.mean(0), x.std(0)
-    lin = st.kernels.Linear()
+    lin = st.kernels.Linear(radius=radius)
     out = torch.zeros_like(x)
     for i in range(9):
         for j in range(9):
             xj = x[j].clone().requires_grad_(True)
-            k = ((xj - center) / scale) @ ((x[i] - center) / scale) + 1
+            k = lin.features(xj, center, scale) @ lin.features(x[i], center, scale) + 1
             (gk,) = torch.autograd.grad(k, xj)
             out[i] += k.detach() * s[j] + gk
     np.testing.assert_allclose(svgd_direction(x, s, lin).numpy(), (out / 9).numpy(), rtol=1e-10, atol=1e-12)
