@@ -28,6 +28,7 @@ import torch
 __all__ = ["ObservedData", "with_likelihood", "pointwise_log_likelihood", "full_log_prob", "likelihood_groups"]
 
 POINTWISE_ELEMENTS = 2**20  # particles x observations per chunk of the pointwise log-likelihood
+SCORE_PAIRS = 2**15  # particles x observations per autograd pass of a score (larger: in observation chunks)
 
 
 class ObservedData:
@@ -94,6 +95,7 @@ class ObservedData:
             raise ValueError(f"observed: {unknown} are not keys of data (keys: {list(tensors)})")
         self.observed = observed
         self.indices: torch.Tensor | None = None
+        self.window: tuple[int, int] | None = None  # rows of the data in use that a score chunk sees
         self._generator: torch.Generator | None = None
         self._order: torch.Tensor | None = None
         self._position = 0
@@ -159,14 +161,53 @@ class ObservedData:
         finally:
             self.indices = saved
 
+    # ------------------------------------------------------------------ score chunks
+    @property
+    def in_use(self) -> int:
+        """Number of observations in use (the minibatch size, or n_obs)."""
+        return self.n_obs if self.indices is None else self.indices.numel()
+
+    def score_chunks(self, n_particles: int) -> list[tuple[int, int]]:
+        """Row ranges of the data in use, each with at most ``SCORE_PAIRS`` particle-observation pairs.
+
+        A score over many observations is taken chunk by chunk (one autograd pass each, summed):
+        the network's intermediates stay a few MiB instead of particles x n_obs x width numbers,
+        which keeps memory bounded and the arithmetic in cache.
+        """
+        n = self.in_use
+        rows = max(1, SCORE_PAIRS // max(1, n_particles))
+        return [(a, min(n, a + rows)) for a in range(0, n, rows)]
+
+    @contextlib.contextmanager
+    def chunk(self, start: int, stop: int):
+        """Context in which the log density sees rows start..stop-1 of the data in use, and the
+        prior and log-Jacobian only in the chunk that starts at 0 (so chunk sums give the whole)."""
+        saved, self.window = self.window, (start, stop)
+        try:
+            yield self
+        finally:
+            self.window = saved
+
+    @property
+    def with_prior(self) -> bool:
+        """Whether the log density in use includes the prior (not in later score chunks)."""
+        return self.window is None or self.window[0] == 0
+
     # ------------------------------------------------------------------ access
     def current(self, dtype: torch.dtype, device=None) -> tuple[dict, float]:
-        """The data in use (current minibatch or all) cast to ``dtype``, and the scale n_obs / |batch|."""
+        """The data in use (current minibatch or all, restricted to the chunk window) cast to
+        ``dtype``, and the scale n_obs / |batch|."""
         full = self.cast(dtype, device)
+        scale = 1.0 if self.indices is None else self.n_obs / self.indices.numel()
         if self.indices is None:
-            return full, 1.0
-        idx = self.indices.to(next(iter(full.values())).device)
-        return {k: v[idx] for k, v in full.items()}, self.n_obs / idx.numel()
+            batch = full
+        else:
+            idx = self.indices.to(next(iter(full.values())).device)
+            batch = {k: v[idx] for k, v in full.items()}
+        if self.window is not None:
+            start, stop = self.window
+            batch = {k: v[start:stop] for k, v in batch.items()}
+        return batch, scale
 
     def cast(self, dtype: torch.dtype, device=None) -> dict:
         """All data with floating tensors in ``dtype`` (cached per dtype and device)."""
@@ -221,7 +262,8 @@ def with_likelihood(log_prior: Callable, log_likelihood: Callable, data: Observe
         batch, scale = data.current(dtype, device)
         n = next(iter(batch.values())).shape[0]
         terms = _check_terms(log_likelihood(arg, batch), n)
-        return log_prior(arg) + scale * terms.sum(-1)
+        likelihood = scale * terms.sum(-1)
+        return log_prior(arg) + likelihood if data.with_prior else likelihood
 
     return log_joint
 

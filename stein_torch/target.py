@@ -409,7 +409,8 @@ class Target:
         Tensor of shape (...)
         """
         values, log_jac = self.constrain(z)
-        return self._call_user(values, z.shape[:-1]) + log_jac
+        out = self._call_user(values, z.shape[:-1])
+        return out + log_jac if self.data is None or self.data.with_prior else out
 
     def log_prob_and_score(self, z: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """Log density and its gradient (the score) on the unconstrained space.
@@ -422,7 +423,23 @@ class Target:
         -------
         lp : Tensor of shape (...)
         score : Tensor of shape (..., dim)
+
+        Notes
+        -----
+        With data, a score over many particle-observation pairs is summed over chunks of the
+        observations (:meth:`ObservedData.score_chunks`), one autograd pass each.
         """
+        chunks = [] if self.data is None else self.data.score_chunks(z.shape[:-1].numel())
+        if len(chunks) <= 1:
+            return self._log_prob_and_score(z)
+        lp = score = 0
+        for start, stop in chunks:
+            with self.data.chunk(start, stop):
+                lp_chunk, score_chunk = self._log_prob_and_score(z)
+            lp, score = lp + lp_chunk, score + score_chunk
+        return lp, score
+
+    def _log_prob_and_score(self, z: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         with torch.enable_grad():
             z = z.detach().requires_grad_(True)
             try:

@@ -87,6 +87,31 @@ def test_minibatches_cover_each_epoch_and_average_to_the_full_density():
     assert t.data.indices is None  # full data outside a step
 
 
+@pytest.mark.parametrize("batch_size", [None, 50])
+def test_scores_in_observation_chunks_equal_the_single_pass(monkeypatch, batch_size):
+    # A score over many particle-observation pairs is summed over chunks of the observations; the
+    # prior and the log-Jacobian (here of a positive noise scale) must count once. Reference: the same
+    # target scored in one autograd pass.
+    import stein_torch.data as data_module
+
+    y = observations()
+    t = st.Target.from_priors(
+        {"mu": Normal(torch.tensor(0.0, dtype=torch.float64), PRIOR_SD), "sigma": torch.distributions.HalfNormal(SIGMA)},
+        lambda p, d: Normal(p["mu"][..., None], p["sigma"][..., None]).log_prob(d["y"]),
+        data={"y": y}, batch_size=batch_size,
+    )
+    z = torch.randn(2, 7, 2, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
+    t.data.start(torch.Generator().manual_seed(0))
+    with t.data.next_batch():
+        assert len(t.data.score_chunks(14)) == 1
+        lp_once, score_once = t.log_prob_and_score(z)
+        monkeypatch.setattr(data_module, "SCORE_PAIRS", 14 * 9)  # 9 observations per chunk
+        assert len(t.data.score_chunks(14)) == -(-t.data.in_use // 9) > 1
+        lp_chunked, score_chunked = t.log_prob_and_score(z)
+    np.testing.assert_allclose(lp_chunked.numpy(), lp_once.numpy(), rtol=1e-12)
+    np.testing.assert_allclose(score_chunked.numpy(), score_once.numpy(), rtol=1e-10, atol=1e-12)
+
+
 def test_minibatch_stream_is_seeded():
     y = observations()
     picks = []
