@@ -88,6 +88,7 @@ def _build_parser() -> _Parser:
     bench = sub.add_parser("bench", parents=[common], help="run benchmark suites and print their tables")
     bench.add_argument("suites", nargs="*", metavar="SUITE", help="suite names or 'all' (default: core)")
     bench.add_argument("--quick", action="store_true", help="small sizes (seconds, for tests)")
+    bench.epilog = "Options a suite defines (e.g. 'bench accuracy --names ... --seeds K') are passed on to it."
     return parser
 
 
@@ -99,7 +100,11 @@ def main(argv: list[str] | None = None) -> int:
 
     threads = torch.get_num_threads()  # restored on return: main() may run inside a larger program
     try:
-        args = _build_parser().parse_args(argv)
+        parser = _build_parser()
+        args, extra = parser.parse_known_args(argv)
+        if extra and args.command != "bench":  # suite options (e.g. --names, --seeds) go through to the suite
+            parser.error(f"unrecognized arguments: {' '.join(extra)}")
+        args.suite_options = extra
         debug = getattr(args, "debug", False)
         _quiet_libraries()
         command = {"demo": _demo, "run": _run, "bench": _bench}[args.command]
@@ -243,7 +248,9 @@ def _bench(args) -> int:
         missing = [name for name in chosen if not _module_exists(SUITES[name])]
         if missing:
             raise UsageError(f"bench: suite {missing[0]!r} is not available in this installation (module {SUITES[missing[0]]})")
-    suite_args = ["--quick"] if args.quick else []
+    if args.suite_options and len(chosen) > 1:
+        raise UsageError(f"bench: options {' '.join(args.suite_options)} are for one suite; name a single suite")
+    suite_args = (["--quick"] if args.quick else []) + list(args.suite_options)
     worst = 0
     for i, name in enumerate(chosen):
         if len(chosen) > 1:

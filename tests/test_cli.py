@@ -211,6 +211,16 @@ def test_bench_core_quick_prints_every_row(capsys, one_thread):
     assert agreement < 1e-10
 
 
+def test_bench_passes_suite_options_through(capsys, one_thread, monkeypatch):
+    # options the CLI does not know go to the one suite named (here the module suite's --json)
+    from stein_torch.benchmarks import module as module_bench
+
+    seen = {}
+    monkeypatch.setattr(module_bench, "main", lambda args: seen.setdefault("args", args) and 0)
+    assert main(["bench", "module", "--quick", "--json"]) == 0
+    assert seen["args"] == ["--quick", "--json"]
+
+
 # ---------------------------------------------------------------------------------- bad arguments
 @pytest.mark.parametrize(
     "argv, fragment",
@@ -223,6 +233,8 @@ def test_bench_core_quick_prints_every_row(capsys, one_thread):
         (["run", "no_such_model.py"], "no such file"),
         (["run", "--steps", "5"], "MODEL.py"),
         (["bench", "nosuch"], "core, accuracy, kernels, module, all"),
+        (["demo", "--names", "x"], "unrecognized arguments: --names x"),
+        (["bench", "core", "module", "--json"], "name a single suite"),
     ],
 )
 def test_bad_arguments_exit_2_with_one_line(argv, fragment, capsys):
