@@ -113,17 +113,19 @@ def median_bandwidth(
     n = x.shape[-2]
     if n < 2:
         return torch.ones(x.shape[:-2], dtype=x.dtype, device=x.device)
-    if n * (n - 1) // 2 <= MEDIAN_PAIRS:  # all pairs
-        i, j = torch.triu_indices(n, n, offset=1, device=x.device)
-        if distances is None:  # from one Gram matrix (matmul, ~5x faster than differences)
-            centred = x - x.mean(-2, keepdim=True)  # distances do not move; centring keeps |a|^2+|b|^2-2ab accurate
-            distances = squared_distances(centred, centred)
-        return _median_rule(distances.flatten(-2).index_select(-1, i * n + j), n)
+    exact = n * (n - 1) // 2 <= MEDIAN_PAIRS  # all pairs
+    if distances is not None and (exact or generator is None):
+        flat = _flat_pairs(n)
+        flat = flat if flat.device == x.device else flat.to(x.device)
+        return _median_rule(distances.flatten(-2).index_select(-1, flat), n)
+    if exact:  # from one Gram matrix (matmul, ~5x faster than differences)
+        centred = x - x.mean(-2, keepdim=True)  # distances do not move; centring keeps |a|^2+|b|^2-2ab accurate
+        pairs = _flat_pairs(n).to(x.device)
+        return _median_rule(squared_distances(centred, centred).flatten(-2).index_select(-1, pairs), n)
     i, j = _random_pairs(n, generator) if generator is not None else _pair_design(n)
     i, j = i.to(x.device), j.to(x.device)
     if distances is not None:
-        flat = _flat_design(n) if generator is None else i * n + j
-        return _median_rule(distances.flatten(-2).index_select(-1, flat.to(x.device)), n)
+        return _median_rule(distances.flatten(-2).index_select(-1, i * n + j), n)
     # In blocks of pairs with index_select (not x[..., i, :]): same values, but small temporaries
     # that the allocator reuses instead of fresh pages for (pairs, d) arrays (10-20x faster here).
     d2 = torch.empty((*x.shape[:-2], i.numel()), dtype=x.dtype, device=x.device)
@@ -149,17 +151,21 @@ def _pair_design(n: int) -> tuple[torch.Tensor, torch.Tensor]:
 
 
 @functools.lru_cache(maxsize=16)
-def _flat_design(n: int) -> torch.Tensor:
-    """The fixed pairs as indices into a flattened N x N matrix."""
-    i, j = _pair_design(n)
+def _flat_pairs(n: int) -> torch.Tensor:
+    """Indices into a flattened N x N matrix of the pairs the median uses without a generator: all
+    pairs i < j for small N, the fixed design above."""
+    if n * (n - 1) // 2 <= MEDIAN_PAIRS:
+        i, j = torch.triu_indices(n, n, offset=1)
+    else:
+        i, j = _pair_design(n)
     return i * n + j
 
 
 def _median_rule(d2: torch.Tensor, n: int) -> torch.Tensor:
-    """h = median(d2) / log(n + 1) over the last axis, 1 where that is 0."""
+    """h = median(d2) / log(n + 1) over the last axis (the lower median), 1 where that is 0."""
     med = d2.median(-1).values
-    h = med / math.log(n + 1)
-    return torch.where(h > 0, h, torch.ones_like(h))
+    h = med.div_(math.log(n + 1))
+    return torch.where(h > 0, h, 1.0)
 
 
 class RadialKernel(Kernel):
@@ -202,17 +208,22 @@ class RadialKernel(Kernel):
         """Return f''(s), elementwise."""
         raise NotImplementedError
 
-    def profile_(self, s: torch.Tensor, scratch) -> tuple[torch.Tensor, torch.Tensor]:
+    def profile_(self, s: torch.Tensor, scratch, inv_h: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
         """:meth:`profile` for the SVGD engine, which owns ``s`` and lets it be overwritten.
 
-        ``scratch`` (a :class:`stein_torch.stein.Scratch`) lends reusable buffers. Kernels with a
-        cheap closed form compute in place; the default allocates like :meth:`profile`.
+        ``s`` holds squared distances from matmuls (they may dip a little below 0), scaled by
+        ``inv_h`` (broadcastable, e.g. (B, 1, 1)) first when it is given. ``scratch`` (a
+        :class:`stein_torch.stein.Scratch`) lends reusable buffers. Kernels with a cheap closed form
+        compute in place in few passes; the default scales, clamps at 0 and calls :meth:`profile`.
         """
-        return self.profile(s)
+        if inv_h is not None:
+            s = s.mul_(inv_h)
+        return self.profile(s.clamp_min_(0))
 
     def stein_terms_(self, s: torch.Tensor, scratch) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
         """f(s), f'(s) and sum over the last two axes of f''(s) s, for the kernel Stein discrepancy;
-        ``s`` (..., n, m) may be overwritten, ``scratch`` as in :meth:`profile_`."""
+        ``s`` (..., n, m) as in :meth:`profile_` (scaled), ``scratch`` as there."""
+        s = s.clamp_min_(0)
         f, g = self.profile(s)
         return f, g, (self.curvature(s) * s).sum((-2, -1))
 
@@ -298,16 +309,22 @@ class IMQ(RadialKernel):
         return self.beta * (self.beta - 1) * base.pow(self.beta - 2)
 
     # beta = -1/2: f = (c^2 + s)^(-1/2), f' = -f^3 / 2, f'' = 3 f^5 / 4, in place and in scratch buffers
-    def profile_(self, s, scratch):
+    def profile_(self, s, scratch, inv_h=None):
         if self.beta != -0.5:
-            return self.profile(s)
-        f = s.add_(self.c**2).rsqrt_()
-        g = torch.mul(f, f, out=scratch.buffer("fprime", f))
-        return f, g.mul_(f).mul_(self.beta)
+            return super().profile_(s, scratch, inv_h)
+        # c^2 + s inv_h in one pass (no clamp needed: c^2 > 0 absorbs rounding below 0)
+        base = s.add_(self.c**2) if inv_h is None else torch.addcmul(self._c2(s), s, inv_h, out=s)
+        f = base.rsqrt_()
+        g = torch.pow(f, 3, out=scratch.buffer("fprime", f))
+        return f, g.mul_(self.beta)
+
+    def _c2(self, like):
+        return torch.tensor(self.c**2, dtype=like.dtype, device=like.device)
 
     def stein_terms_(self, s, scratch):
         if self.beta != -0.5:
             return super().stein_terms_(s, scratch)
+        s = s.clamp_min_(0)
         f = torch.add(s, self.c**2, out=scratch.buffer("value", s)).rsqrt_()
         g = torch.mul(f, f, out=scratch.buffer("fprime", s)).mul_(f)  # f^3
         curvature_s = s.mul_(g).mul_(f).mul_(f).sum((-2, -1)).mul_(0.75)  # sum of 3/4 f^5 s

@@ -40,6 +40,8 @@ class Affine:
 
     def to_z(self, u: torch.Tensor) -> torch.Tensor:
         """u (B, N, d) -> z (B, N, d)."""
+        if self.matrix.dim() == 2 and self.shift.dim() == 1:  # one map for all: a single addmm
+            return torch.addmm(self.shift, u.reshape(-1, u.shape[-1]), self.matrix.mT).view(u.shape)
         return self.shift.unsqueeze(-2) + u @ self.matrix.mT
 
     def to_u(self, z: torch.Tensor) -> torch.Tensor:

@@ -5,6 +5,8 @@ Data flow: Target -> coordinates (whitening) -> loop of [scores -> SVGD directio
 
 from __future__ import annotations
 
+import math
+
 import sys
 import warnings
 from typing import Callable, Mapping
@@ -222,9 +224,10 @@ class Sampler:
             lp = torch.full(z.shape[:-1], float("nan"), dtype=z.dtype, device=z.device)
             sz = torch.full_like(z, float("nan"))
             lp[mask], sz[mask] = lp_s, sz_s
-        # NaN/inf anywhere in a particle's position or score reaches its sum, and 0 * sum is NaN then
-        # (also when a sum overflows, i.e. |values| near 1e308: faulty too)
-        bad = ~torch.isfinite(lp + 0 * (sz.sum(-1) + z.sum(-1)))
+        # NaN/inf anywhere in a particle's log density, position or score reaches the sum t, and
+        # t - t is then NaN, not 0 (a sum that overflows, |values| near 1e308, counts as faulty too)
+        total = lp + sz.sum(-1) + z.sum(-1)
+        bad = (total - total) != 0
         return lp, self.affine.score_u(sz), bad
 
     def _evaluate_one_by_one(self, z):
@@ -271,7 +274,7 @@ class Sampler:
         else:
             lp, score, bad = self._evaluate(u_new)
         faults = int(bad.sum())
-        for _ in range(MAX_BACKTRACK):
+        for _ in range(MAX_BACKTRACK if faults else 0):
             if not bad.any():
                 break
             u_new = torch.where(bad[..., None], 0.5 * (u_new + self.u), u_new)
@@ -279,7 +282,7 @@ class Sampler:
             lp = torch.where(bad, lp_b, lp)
             score = torch.where(bad[..., None], score_b, score)
             bad = bad & bad_b
-        reverted = int(bad.sum())
+        reverted = int(bad.sum()) if faults else 0
         if reverted:  # give up on this step for these particles: they stay where they were
             u_new = torch.where(bad[..., None], self.u, u_new)
             lp = torch.where(bad, self.lp, lp)
@@ -331,7 +334,7 @@ class Sampler:
         row = {
             "lp": float(self.lp.mean()),
             "step_size": self.stepper.step_size,
-            "phi_rms": float(figures["phi"].pow(2).mean().sqrt()),
+            "phi_rms": float(torch.linalg.vector_norm(figures["phi"])) / math.sqrt(figures["phi"].numel()),
             "faults": figures["faults"],
             "reverted": figures["reverted"],
             "grad_evals": self.grad_evals,

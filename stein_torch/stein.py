@@ -48,9 +48,10 @@ class Scratch:
         return buf
 
     def distances(self, left: torch.Tensor, right: torch.Tensor) -> torch.Tensor:
-        """Scaled squared distances of a row block, left @ right^T clamped at 0, (B, c, N)."""
+        """Scaled squared distances of a row block, left @ right^T, (B, c, N); rounding can leave
+        entries a little below 0 (kernels clamp where it matters, see ``RadialKernel.profile_``)."""
         out = self.buffer("distances", left, (left.shape[0], left.shape[1], right.shape[1]))
-        return torch.bmm(left, right.transpose(1, 2), out=out).clamp_min_(0)
+        return torch.bmm(left, right.transpose(1, 2), out=out)
 
 
 def _as_batch(x: torch.Tensor, name: str) -> tuple[torch.Tensor, torch.Size]:
@@ -115,49 +116,51 @@ def radial_direction(
     batch, n, d = x.shape
     scratch = Scratch() if scratch is None else scratch
     rows = _chunk_rows(batch, n, chunk_elements)
-    first_block = None
+    first_block = inv_h = None
     if h is None and rows == n and kernel.bandwidth == "median":  # one block: the median from its distances
         left, right = _distance_factors(x)
-        first_block = scratch.distances(left, right)  # |x_i - x_j|^2
+        first_block = scratch.distances(left, right)  # |x_i - x_j|^2, scaled by 1/h in the profile
         h = kernel.bandwidth_for(x, generator, distances=first_block)
-        first_block.div_(h[:, None, None])
+        inv_h = (1 / h)[:, None, None]
     else:
         if h is None:
             h = kernel.bandwidth_for(x, generator)
         left, right = _distance_factors(x, h)
-    ones = torch.ones_like(x[..., :1])
-    rhs = torch.cat([score_coef * score, x, ones], -1)  # (B, N, 2d + 1)
-    if weights is not None:
-        rhs = rhs * weights[..., None]
     # Products are taken as rhs^T K^T (B, 2d + 1, c): the same numbers as K rhs, but with the small
-    # side first BLAS runs about twice as fast in float64 (measured, see DEVELOPERS.md).
-    rhs_t = rhs.transpose(1, 2).contiguous()
-    x_t = rhs_t[:, d : 2 * d] if weights is None else x.transpose(1, 2)
+    # side first BLAS runs about twice as fast in float64 (measured, see DEVELOPERS.md). The rows of
+    # rhs^T = [score_coef S, X, 1]^T carry the weights and the 1/N of the average.
+    ones = torch.full((batch, 1, n), 1.0 / n, dtype=x.dtype, device=x.device)
+    rhs_t = torch.cat([(score_coef / n) * score.mT, x.mT / n, ones], 1)  # (B, 2d + 1, N)
+    if weights is not None:
+        rhs_t = rhs_t * weights[:, None, :]
+    x_t = x.mT
     fast_rbf = type(kernel) is RBF  # G = -K: a single matmul
     two_over_h = (2 / h)[:, None, None]
     out = torch.empty_like(x)
+    out_t = out.mT  # (B, d, N) view: results are written straight into out
     for a in range(0, n, rows):
         b = min(n, a + rows)
         if first_block is not None:
             s = first_block
         else:
             s = scratch.distances(left[:, a:b], right)  # (B, c, N) scaled distances
-        if fast_rbf:
-            kr = torch.bmm(rhs_t, s.neg_().exp_().transpose(1, 2))  # (B, 2d + 1, c)
+        if fast_rbf:  # phi = K S + (2/h) (G X - diag(G 1) X) with G = -K
+            k = s.mul_(-inv_h if inv_h is not None else -1).exp_()  # rounding below 0: exp(+1e-16), harmless
+            kr = torch.bmm(rhs_t, k.transpose(1, 2))  # (B, 2d + 1, c)
             ks, kx, ksum = kr[:, :d], kr[:, d : 2 * d], kr[:, 2 * d :]
-            out[:, a:b] = (ks - two_over_h * (kx - ksum * x_t[..., a:b])).transpose(1, 2)
+            torch.addcmul(ks, two_over_h, torch.addcmul(kx, ksum, x_t[..., a:b], value=-1), value=-1, out=out_t[..., a:b])
             continue
-        k, g = kernel.profile_(s, scratch)
+        k, g = kernel.profile_(s, scratch, inv_h)
         if kernel.singular:  # profile() keeps f' finite near 0; the self-pair (zero displacement) is exactly 0
             idx = torch.arange(a, b, device=x.device)
             g[:, idx - a, idx] = 0
         ks = torch.bmm(rhs_t[:, :d], k.transpose(1, 2))
         gr = torch.bmm(rhs_t[:, d:], g.transpose(1, 2))
         gx, gsum = gr[:, :d], gr[:, d:]
-        out[:, a:b] = (ks + two_over_h * (gx - gsum * x_t[..., a:b])).transpose(1, 2)
+        torch.addcmul(ks, two_over_h, torch.addcmul(gx, gsum, x_t[..., a:b], value=-1), out=out_t[..., a:b])
     if weights is not None:
         out = out * weights[..., None]
-    return out / n
+    return out
 
 
 def linear_direction(
@@ -227,7 +230,10 @@ def svgd_direction(
 
 def _direction(x, s, kernel, drive, lp, generator, chunk_elements, scratch):
     if isinstance(kernel, Sum):
-        return sum(_direction(x, s, part, drive, lp, generator, chunk_elements, scratch) for part in kernel.parts)
+        first, *rest = (_direction(x, s, part, drive, lp, generator, chunk_elements, scratch) for part in kernel.parts)
+        for phi in rest:
+            first += phi
+        return first
     if isinstance(kernel, Linear):
         return linear_direction(x, s, score_coef=drive, radius=kernel.radius)
     if hasattr(kernel, "stein_direction"):  # kernels that bring their own (e.g. target-weighted)

@@ -92,7 +92,7 @@ class GradientStep(Stepper):
         self.max_move = _check_max_move(max_move, "GradientStep")
 
     def step(self, u, phi, velocity):
-        return u + self.lr * _capped(phi, self.lr, self.max_move)
+        return torch.add(u, _capped(phi, self.lr, self.max_move), alpha=self.lr)
 
     @property
     def step_size(self) -> float:

@@ -267,7 +267,12 @@ class Target:
 
     def constrain(self, z: torch.Tensor) -> tuple[dict, torch.Tensor]:
         """Map flat unconstrained ``z`` (..., dim) to constrained values and the log-Jacobian (...)."""
-        values, log_jac = {}, torch.zeros(z.shape[:-1], dtype=z.dtype, device=z.device)
+        values, log_jac = self._constrain(z)
+        return values, torch.zeros(z.shape[:-1], dtype=z.dtype, device=z.device) if log_jac is None else log_jac
+
+    def _constrain(self, z: torch.Tensor) -> tuple[dict, torch.Tensor | None]:
+        """:meth:`constrain`, with log-Jacobian None when every block is on the real line."""
+        values, log_jac = {}, None
         for b in self.blocks:
             free = z[..., b.start : b.start + b.size].reshape(*z.shape[:-1], *b.free_shape)
             if b.identity:
@@ -275,8 +280,9 @@ class Target:
                 continue
             value = b.transform(free)
             ladj = b.transform.log_abs_det_jacobian(free, value)
-            extra = ladj.dim() - (z.dim() - 1)
-            log_jac = log_jac + (ladj.flatten(z.dim() - 1).sum(-1) if extra > 0 else ladj)
+            if ladj.dim() > z.dim() - 1:
+                ladj = ladj.flatten(z.dim() - 1).sum(-1)
+            log_jac = ladj if log_jac is None else log_jac + ladj
             values[b.name] = value
         return values, log_jac
 
@@ -408,9 +414,11 @@ class Target:
         -------
         Tensor of shape (...)
         """
-        values, log_jac = self.constrain(z)
+        values, log_jac = self._constrain(z)
         out = self._call_user(values, z.shape[:-1])
-        return out + log_jac if self.data is None or self.data.with_prior else out
+        if log_jac is None or not (self.data is None or self.data.with_prior):
+            return out
+        return out + log_jac
 
     def log_prob_and_score(self, z: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """Log density and its gradient (the score) on the unconstrained space.

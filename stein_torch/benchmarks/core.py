@@ -2,19 +2,23 @@
 
 Rows printed, all measured in one run (medians of interleaved repeats after warm-up):
 
-(a), (b) time of one SVGD direction (:func:`stein_torch.svgd_direction`, float32; default kernel
+(a), (b) time of one SVGD direction (:func:`stein_torch.svgd_direction`, float32; kernels
     ``RBF() + Linear()``, plain ``RBF()`` and the default ``IMQ() + Linear(radius=2.0)``,
     median-heuristic bandwidth included) divided by the
     time of the bare batched matmuls the direction cannot avoid, X X^T of shape (N, d) x (d, N)
-    and K [S, X] of shape (N, N) x (N, 2d). Floor 3.0, aim 1.5.
+    and K [S, X] of shape (N, N) x (N, 2d) (timed in the faster layout, (S, X)^T K^T). The
+    directions keep their pairwise buffers between calls (:class:`stein_torch.stein.Scratch`), as a
+    sampler does. Floor 3.0, aim 1.5.
 (c) peak resident memory of one full SVGD step (:meth:`stein_torch.Sampler.step`, float64) at
     N = 50,000, d = 10, in a fresh subprocess: the kernel's high-water mark (VmHWM) is reset just
     before the step (``/proc/self/clear_refs``), so the figure is the process's peak during the step
     itself (torch and Python included). Floor 3 GB.
-(d) one full ``Sampler.step`` (scores by batched autograd, default kernel, Adam, fault checks)
-    against a naive step that calls autograd once per particle and builds the RBF direction with a
-    Python loop over particles (N = 256, d = 20, Bayesian logistic regression on invented data).
-    The naive step does less work (no linear kernel, plain gradient step). Floor 20x.
+(d) one full default ``Sampler.step`` (scores by batched autograd, ``IMQ() + Linear(radius=2)``
+    with the median heuristic, gradient step with a move cap, fault checks, a KSD check every
+    10 steps) against a naive step that calls autograd once per particle and builds the RBF
+    direction with a Python loop over particles (N = 256, d = 20, Bayesian logistic regression on
+    invented data). The naive step does less work (no linear kernel, no checks). Medians of 31
+    interleaved repeats: the ratio moves by about +-10% between runs on a shared machine. Floor 20x.
 """
 
 from __future__ import annotations
@@ -34,7 +38,7 @@ import torch
 
 import stein_torch as st
 from stein_torch.kernels import IMQ, RBF, Linear
-from stein_torch.stein import svgd_direction
+from stein_torch.stein import Scratch, svgd_direction
 
 __all__ = ["main"]
 
@@ -70,15 +74,17 @@ def direction_ratios(n: int, d: int, repeats: int) -> dict[str, float]:
     score = -x + 0.1 * torch.randn(1, n, d, generator=g, dtype=torch.float32)
     gram = torch.rand(1, n, n, generator=g, dtype=torch.float32)
     score_x = torch.cat([score, x], -1)  # (1, N, 2d)
+    score_x_t = score_x.transpose(1, 2).contiguous()
     x_t = x.transpose(1, 2).contiguous()
     kernels = {"RBF()+Linear()": RBF() + Linear(), "RBF()": RBF(), "IMQ()+Linear(2) default": IMQ() + Linear(radius=2.0)}
-    gen = torch.Generator().manual_seed(1)
+    scratch = {name: Scratch() for name in kernels}  # as in a sampler: pairwise buffers kept between steps
 
-    def bare():
+    def bare():  # K [S, X] as the engine takes it, (S, X)^T K^T: the faster layout (see DEVELOPERS.md)
         torch.bmm(x, x_t)
-        torch.bmm(gram, score_x)
+        torch.bmm(score_x_t, gram.transpose(1, 2))
 
-    calls = [bare] + [lambda k=k: svgd_direction(x, score, k, generator=gen) for k in kernels.values()]
+    calls = [bare] + [lambda k=k, name=name: svgd_direction(x, score, k, scratch=scratch[name])
+                      for name, k in kernels.items()]
     with torch.no_grad():
         wall, cpu = _interleaved_medians(calls, repeats)
     out = {"bare": wall[0]}
@@ -191,7 +197,7 @@ def loop_speedup(n: int, d: int, repeats: int) -> dict:
     def naive_step():
         state["x"] = state["x"] + 0.01 * naive_direction(state["x"], log_prob)
 
-    wall, cpu = _interleaved_medians([sampler.step, naive_step], repeats, warmup=1)
+    wall, cpu = _interleaved_medians([sampler.step, naive_step], 2 * repeats + 1, warmup=1)
     return {
         "step": wall[0], "naive": wall[1], "speedup": wall[1] / wall[0], "cpu speedup": cpu[1] / cpu[0],
         "agreement": agreement,
