@@ -6,8 +6,9 @@ For particles x_1..x_N with scores s_j = grad log p(x_j) the SVGD direction is
     phi(x_i) = (1/N) sum_j [ k(x_j, x_i) s_j + grad_{x_j} k(x_j, x_i) ].
 
 For a radial kernel k = f(|x - y|^2 / h) this is (1/N) [K S + (2/h)(G X - diag(G 1) X)] with
-K = f(s), G = f'(s): one matmul against [S, X, 1] per block of rows. Rows are processed in chunks so
-memory stays O(N x chunk); no Python loop runs over particles.
+K = f(s), G = f'(s): thin products of K and G with [S, X, 1] per block of rows (one product for the
+RBF, where G = -K). Rows are processed in chunks so memory stays O(N x chunk); no Python loop runs
+over particles. A :class:`Scratch` keeps the N x N blocks between calls.
 """
 
 from __future__ import annotations
