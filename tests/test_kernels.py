@@ -14,7 +14,7 @@ from sklearn.gaussian_process import kernels as skk
 
 import stein_torch as st
 from stein_torch.kernels import median_bandwidth
-from stein_torch.stein import svgd_direction
+from stein_torch.stein import Scratch, ksd, svgd_direction
 
 torch.set_default_dtype(torch.float64)
 
@@ -124,6 +124,42 @@ def test_direction_matches_double_sum(kernel):
     for chunk in (1 << 22, 20):  # one block and several row blocks
         ours = svgd_direction(x[None], s[None], fixed, chunk_elements=chunk)[0]
         np.testing.assert_allclose(ours.numpy(), ref.numpy(), rtol=1e-10, atol=1e-12)
+        # the median-heuristic kernel itself: with one block its bandwidth comes from the block's
+        # own distances (scaled inside the kernel), with several from a separate pass
+        ours = svgd_direction(x[None], s[None], kernel, chunk_elements=chunk)[0]
+        np.testing.assert_allclose(ours.numpy(), ref.numpy(), rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize("kernel", [st.kernels.IMQ(), st.kernels.RBF() + st.kernels.Linear(radius=2.0),
+                                    st.kernels.Matern(0.5)], ids=repr)
+def test_reused_scratch_buffers_give_the_fresh_results(kernel):
+    # A Scratch lends the same N x N buffers to every call (a sampler keeps one for its run): calls at
+    # other sizes in between, chunked calls and KSD calls must not leak into the results (reference:
+    # the same call with fresh buffers).
+    g = torch.Generator().manual_seed(6)
+    scratch = Scratch()
+    for n, chunk in ((40, 1 << 22), (300, 1 << 22), (40, 1 << 22), (120, 2000), (300, 1 << 22)):
+        x, s = torch.randn(2, n, 3, generator=g), torch.randn(2, n, 3, generator=g)
+        fresh = svgd_direction(x, s, kernel, chunk_elements=chunk)
+        reused = svgd_direction(x, s, kernel, chunk_elements=chunk, scratch=scratch)
+        torch.testing.assert_close(reused, fresh, rtol=0, atol=0)
+        torch.testing.assert_close(ksd(x, s, scratch=scratch), ksd(x, s), rtol=0, atol=0)
+
+
+def test_median_over_the_fixed_pair_design_does_not_jitter():
+    # Above MEDIAN_PAIRS pairs and without a generator the median heuristic reads a fixed design of
+    # pairs: the same particles give the same bandwidth at every call, read from a distance matrix or
+    # computed from differences; a generator draws fresh pairs (common practice: the median heuristic
+    # of arXiv:1608.04471 on a subsample).
+    g = torch.Generator().manual_seed(7)
+    x = torch.randn(1, 300, 4, generator=g)
+    centred = x - x.mean(-2, keepdim=True)
+    d2 = ((centred[:, :, None, :] - centred[:, None, :, :]) ** 2).sum(-1)
+    first = median_bandwidth(x)
+    assert torch.equal(median_bandwidth(x), first)
+    torch.testing.assert_close(median_bandwidth(x, distances=d2), first, rtol=1e-12, atol=0)
+    fresh = {float(median_bandwidth(x, torch.Generator().manual_seed(k))[0]) for k in range(5)}
+    assert len(fresh) > 1
 
 
 def _settings(kernel):
