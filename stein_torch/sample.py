@@ -6,7 +6,6 @@ Data flow: Target -> coordinates (whitening) -> loop of [scores -> SVGD directio
 from __future__ import annotations
 
 import math
-
 import sys
 import warnings
 from typing import Callable, Mapping
