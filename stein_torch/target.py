@@ -274,7 +274,10 @@ class Target:
         """:meth:`constrain`, with log-Jacobian None when every block is on the real line."""
         values, log_jac = {}, None
         for b in self.blocks:
-            free = z[..., b.start : b.start + b.size].reshape(*z.shape[:-1], *b.free_shape)
+            if b.size == z.shape[-1] and len(b.free_shape) == 1:  # one flat block: z itself, no view
+                free = z
+            else:
+                free = z[..., b.start : b.start + b.size].reshape(*z.shape[:-1], *b.free_shape)
             if b.identity:
                 values[b.name] = free
                 continue
