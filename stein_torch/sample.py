@@ -256,7 +256,7 @@ class Sampler:
     # ------------------------------------------------------------------ stepping
     def step(self) -> None:
         """One SVGD step with fault containment (reject and shrink the step of faulty particles)."""
-        data = getattr(self.target, "data", None)
+        data = self.data_stream
         if data is None or data.batch_size is None:
             return self._step()
         with data.next_batch():  # scores of this step on the next minibatch (stochastic SVGD)
@@ -432,7 +432,7 @@ class Sampler:
         """The current particles as a :class:`Result`."""
         z = self.affine.to_z(self.u).detach()
         lp = self.lp.detach().clone()
-        data = getattr(self.target, "data", None)
+        data = self.data_stream
         if data is not None and data.batch_size is not None:  # report the full-data log density
             from .data import full_log_prob
 

@@ -98,14 +98,7 @@ class GradientStep(Stepper):
     def step_size(self) -> float:
         return self.lr
 
-    def state_dict(self):
-        return {"lr": self.lr, "max_move": self.max_move}
-
-    def load_state_dict(self, state):
-        if state:
-            self.lr, self.max_move = state["lr"], state["max_move"]
-
-    def __repr__(self):
+    def __repr__(self):  # its settings; it keeps no state between steps (state_dict() is {})
         cap = "" if self.max_move is None else f", max_move={self.max_move}"
         return f"GradientStep(lr={self.lr}{cap})"
 
