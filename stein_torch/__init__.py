@@ -2,43 +2,40 @@
 
 >>> import stein_torch as st
 >>> target = st.Target(lambda x: -0.5 * (x ** 2).sum(-1), dim=2)
->>> run = st.sample(target, particles=100, steps=200, seed=0)
+>>> run = st.svgd(target, particles=100, steps=200, seed=0)
 >>> run.draws["x"].shape
 torch.Size([1, 100, 2])
 """
 
-from . import io, kernels, schedules, steppers
-from .data import ObservedData
-from .io import load
-from .predict import PredictiveBands, predictive_interval
-from .compare import compare
-from .langevin import langevin
-from .result import Result
-from .sample import Sampler, sample
+from . import io, kernels
+from ._version import __version__
+from .files import load
+from .model import Latent, ObservedData, SamplerDefaults, Target
+from .race import race
+from .result import PredictiveBands, Result, predictive_interval
+from .samplers import Langevin, Sampler, StopRule, langevin, schedules, steppers, svgd
 from .stein import ksd, svgd_direction
-from .stopping import StopRule
-from .target import Param, Target
-
-__version__ = "0.1.0"
 
 __all__ = [
+    "Latent",
+    "Langevin",
     "ObservedData",
-    "Param",
     "PredictiveBands",
     "Result",
     "Sampler",
+    "SamplerDefaults",
     "StopRule",
     "Target",
-    "compare",
     "io",
     "kernels",
     "ksd",
     "langevin",
     "load",
     "predictive_interval",
-    "sample",
+    "race",
     "schedules",
     "steppers",
+    "svgd",
     "svgd_direction",
     "__version__",
 ]

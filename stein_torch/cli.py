@@ -16,7 +16,7 @@ import traceback
 import warnings
 from pathlib import Path
 
-RUN_STEPS = 400  # the sampler's default cap (stein_torch.sample.DEFAULT_STEPS), kept import-free
+RUN_STEPS = 400  # the sampler's default cap (stein_torch.samplers.svgd.DEFAULT_STEPS), kept import-free
 
 __all__ = ["main"]
 
@@ -192,7 +192,7 @@ def _run(args) -> int:
         raise UsageError(f"--out: the folder {str(out.parent)!r} does not exist")
     target = _load_target(model, args.target, st.Target)
     start = time.perf_counter()
-    run = st.sample(target, particles=args.particles, steps=args.steps, ensembles=args.ensembles, seed=args.seed)
+    run = st.svgd(target, particles=args.particles, steps=args.steps, ensembles=args.ensembles, seed=args.seed)
     seconds = time.perf_counter() - start
     print(
         f"{model.name}: {args.ensembles} x {args.particles} particles, {args.steps} SVGD steps, "

@@ -30,9 +30,9 @@ import torch
 from torch.distributions import HalfNormal, LogNormal, Normal, constraints
 
 from .io import save_figure, save_netcdf
+from .model import Latent, Target
 from .result import Result
-from .sample import sample
-from .target import Param, Target
+from .samplers import svgd
 
 __all__ = ["kiln_data", "demo_target", "run_demo", "days_to_moisture", "DEMO_STEPS", "KILN_DRY_PERCENT"]
 
@@ -86,10 +86,10 @@ def demo_target(data: dict[str, torch.Tensor] | None = None) -> Target:
 
     return Target(
         log_joint,
-        params={
-            "initial_moisture": Param(constraint=constraints.positive),
-            "drying_rate": Param(constraint=constraints.positive),
-            "noise_sd": Param(constraint=constraints.positive),
+        latents={
+            "initial_moisture": Latent(support=constraints.positive),
+            "drying_rate": Latent(support=constraints.positive),
+            "noise_sd": Latent(support=constraints.positive),
         },
     )
 
@@ -117,7 +117,7 @@ def run_demo(
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     data = kiln_data()
-    run = sample(demo_target(data), particles=particles, steps=steps, seed=seed, progress=progress)
+    run = svgd(demo_target(data), particles=particles, steps=steps, seed=seed, progress=progress)
     idata = run.to_inference_data(
         observed_data={"moisture": data["moisture"].numpy()},
         constant_data={"day": data["day"].numpy()},
@@ -128,7 +128,7 @@ def run_demo(
     files = {
         "posterior": save_netcdf(idata, out / "posterior.nc"),
         "pair_plot": _save_plot(lambda: _pair_plot(idata), out / "pair_plot.png"),
-        "trace_figures": _save_plot(lambda: trace_figure(run.trace), out / "trace_figures.png"),
+        "trace_figures": _save_plot(lambda: trace_figure(run.history), out / "trace_figures.png"),
     }
     run.settings["files"] = {k: str(v) for k, v in files.items()}
     return run

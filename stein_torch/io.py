@@ -14,7 +14,7 @@ Examples
 >>> import stein_torch as st
 >>> with st.io.atomic_write("summary.txt", "w") as f:      # doctest: +SKIP
 ...     f.write("done\\n")
->>> run.save("run.pt"); run = st.load("run.pt", target)   # doctest: +SKIP
+>>> state = st.io.load_checkpoint("run.pt")                 # doctest: +SKIP
 """
 
 from __future__ import annotations
@@ -35,17 +35,12 @@ __all__ = [
     "atomic_path",
     "save_checkpoint",
     "load_checkpoint",
-    "save_result",
-    "load",
-    "target_signature",
-    "check_signature",
     "save_netcdf",
     "save_figure",
 ]
 
 CHECKPOINT_FORMAT = "stein_torch.checkpoint"
-RESULT_FORMAT = "stein_torch.result"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: latents and history (version 1 files are not read)
 
 
 # ---------------------------------------------------------------------- atomic files
@@ -215,6 +210,11 @@ def _check_format(obj, expected: tuple[str, ...], path, argname: str) -> dict:
         kind = obj.get("format") if isinstance(obj, dict) else type(obj).__name__
         raise ValueError(f"{argname}: {os.fspath(path)!r} is not a stein_torch {' or '.join(expected)} file (found {kind!r})")
     version = obj.get("version")
+    if isinstance(version, int) and version < FORMAT_VERSION:
+        raise ValueError(
+            f"{argname}: {os.fspath(path)!r} has format version {version}, written by an older stein_torch; "
+            f"this one reads version {FORMAT_VERSION} (rerun the sampler)"
+        )
     if not isinstance(version, int) or version > FORMAT_VERSION:
         raise ValueError(
             f"{argname}: {os.fspath(path)!r} has format version {version!r}; this stein_torch reads up to "
@@ -223,37 +223,9 @@ def _check_format(obj, expected: tuple[str, ...], path, argname: str) -> dict:
     return obj
 
 
-# ---------------------------------------------------------------------- target signature
-def target_signature(target) -> dict:
-    """What a file must agree on with the target it is used with: names, shapes, constraints."""
-    return {
-        "dim": int(target.dim),
-        "flat": bool(target.flat),
-        "params": [
-            {"name": b.name, "shape": [int(n) for n in b.shape], "constraint": str(b.constraint)}
-            for b in target.blocks
-        ],
-    }
-
-
-def _describe(signature: dict) -> str:
-    parts = ", ".join(f"{p['name']}{tuple(p['shape'])} {p['constraint']}" for p in signature["params"])
-    return f"dim {signature['dim']} [{parts}]"
-
-
-def check_signature(stored: dict, target, argname: str) -> None:
-    """Raise ValueError when a file was written for a target of another shape."""
-    current = target_signature(target)
-    if stored != current:
-        raise ValueError(
-            f"{argname}: the file was written for a different target: {_describe(stored)}; this target has "
-            f"{_describe(current)}. Use the same model (parameter names, shapes and constraints)."
-        )
-
-
 # ---------------------------------------------------------------------- checkpoints
 def save_checkpoint(path, state: Mapping) -> None:
-    """Write a sampler state (from :meth:`stein_torch.Sampler.state_dict`) atomically.
+    """Write a sampler state (a sampler's ``state_dict()``) atomically.
 
     Parameters
     ----------
@@ -261,11 +233,7 @@ def save_checkpoint(path, state: Mapping) -> None:
     state : dict
         Tensors, numbers, strings, lists and dicts only (TypeError otherwise, before writing).
     """
-    plain = to_plain(dict(state), "checkpoint")
-    plain.setdefault("format", CHECKPOINT_FORMAT)
-    plain.setdefault("version", FORMAT_VERSION)
-    with atomic_write(path, "wb") as f:
-        torch.save(plain, f)
+    save_plain(path, {"format": CHECKPOINT_FORMAT, "version": FORMAT_VERSION, **state}, "checkpoint")
 
 
 def load_checkpoint(path, argname: str = "resume") -> dict:
@@ -273,67 +241,18 @@ def load_checkpoint(path, argname: str = "resume") -> dict:
     return _check_format(_safe_load(path, argname), (CHECKPOINT_FORMAT,), path, argname)
 
 
-# ---------------------------------------------------------------------- results
-def save_result(result, path) -> None:
-    """Write a :class:`~stein_torch.Result` atomically.
-
-    ``*.nc``: NetCDF of ``result.to_inference_data()`` (read back with ``arviz.from_netcdf``);
-    anything else: a safe torch file read back with :func:`load`.
-    """
-    path = check_output_path(path, "path")
-    if path.endswith(".nc"):
-        save_netcdf(result.to_inference_data(), path)
-        return
-    state = {
-        "format": RESULT_FORMAT,
-        "version": FORMAT_VERSION,
-        "target": target_signature(result.target),
-        "particles": result.particles,
-        "lp": result.lp,
-        "trace": result.trace,
-        "settings": result.settings,
-        "stop_reason": result.stop_reason,
-        "sample_stats": result.sample_stats,
-    }
-    plain = to_plain(state, "result")
+# ---------------------------------------------------------------------- other plain files
+def save_plain(path, obj: Mapping, where: str) -> None:
+    """Write a dict of plain data (see :func:`to_plain`) atomically as a torch file."""
+    plain = to_plain(dict(obj), where)
     with atomic_write(path, "wb") as f:
         torch.save(plain, f)
 
 
-def load(path, target):
-    """Read a saved result (``Result.save``) or a checkpoint as a :class:`~stein_torch.Result`.
-
-    Parameters
-    ----------
-    path : str or os.PathLike
-    target : Target
-        The model the file was written for (its log density is code and is never stored);
-        names, shapes and constraints must match.
-
-    Returns
-    -------
-    Result
-    """
-    from .result import Result
-    from .target import Target
-
-    if not isinstance(target, Target):
-        raise TypeError(f"target must be a stein_torch.Target, got {type(target).__qualname__}")
-    if isinstance(path, (str, os.PathLike)) and os.fspath(path).endswith(".nc"):
-        raise ValueError("path: NetCDF files hold InferenceData; read them with arviz.from_netcdf")
-    obj = _check_format(_safe_load(path, "path"), (RESULT_FORMAT, CHECKPOINT_FORMAT), path, "path")
-    check_signature(obj.get("target"), target, "path")
-    as_numpy = lambda d: {k: np.asarray(v) for k, v in (d or {}).items()}  # noqa: E731
-    if obj["format"] == RESULT_FORMAT:
-        return Result(
-            target, obj["particles"], obj["lp"], as_numpy(obj["trace"]), dict(obj["settings"]),
-            obj["stop_reason"], as_numpy(obj["sample_stats"]),
-        )
-    affine = obj["affine"]
-    z = affine["shift"] + obj["u"] @ affine["matrix"].T
-    trace = {k: np.asarray(v) for k, v in obj["trace"].items()}
-    settings = {**obj["settings"], "steps": obj["step"]}
-    return Result(target, z, obj["lp"], trace, settings, obj.get("stop_reason", "checkpoint"))
+def load_plain(path, expected: tuple[str, ...], argname: str) -> dict:
+    """Read a file written by :func:`save_plain` or :func:`save_checkpoint` safely, checking that its
+    ``format`` is one of ``expected``."""
+    return _check_format(_safe_load(path, argname), expected, path, argname)
 
 
 def save_netcdf(idata, path) -> str:

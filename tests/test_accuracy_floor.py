@@ -35,7 +35,7 @@ def _posteriors_present():
 
 
 def target_of(model):
-    return st.Target(model.log_joint, params={k: st.Param(tuple(s), c) for k, (s, c) in model.params.items()})
+    return st.Target(model.log_joint, latents={k: st.Latent(tuple(s), c) for k, (s, c) in model.params.items()})
 
 
 def floor_figures(result, model):

@@ -9,7 +9,7 @@ import scipy.linalg
 import torch
 
 import stein_torch as st
-from stein_torch.steppers import TABLEAUX, rk_attempt
+from stein_torch.samplers.steppers import TABLEAUX, rk_attempt
 
 A = np.array([[-0.3, 2.0, 0.0], [-2.0, -0.3, 0.5], [0.0, -0.5, -1.0]])  # damped rotation
 A_T = torch.tensor(A)
@@ -127,10 +127,10 @@ def test_sampler_with_adaptive_stepper_counts_and_traces():
     sampler.run(150, progress=False)
     run = sampler.result()
     # every velocity call evaluates all 100 particles; the sampler reuses the last stage (FSAL)
-    assert run.trace["grad_evals"][-1] - evals0 == 100 * stepper.evaluations
-    attempts = 150 + int(run.trace["rejections"].sum())
+    assert run.history["grad_evals"][-1] - evals0 == 100 * stepper.evaluations
+    attempts = 150 + int(run.history["rejections"].sum())
     assert stepper.evaluations == 3 * attempts + 1  # 3 stages per attempt + the starting-step probe
-    assert np.all(np.isfinite(run.trace["step_size"])) and np.all(run.trace["step_size"] > 0)
+    assert np.all(np.isfinite(run.history["step_size"])) and np.all(run.history["step_size"] > 0)
     z = run.particles[0]
     torch.testing.assert_close(z.mean(0), m, rtol=0, atol=0.05 * math.sqrt(2.0))
     torch.testing.assert_close(torch.cov(z.T), S, rtol=0.1, atol=0.02)

@@ -46,15 +46,15 @@ def test_schedule_errors():
         st.schedules.linear(10.5)
     t = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=1)
     with pytest.raises(TypeError, match="anneal"):
-        st.sample(t, 10, 1, anneal=0.5)
+        st.svgd(t, 10, 1, anneal=0.5)
     with pytest.raises(ValueError, match="anneal"):
-        st.sample(t, 10, 1, anneal=lambda step: 2.0)
+        st.svgd(t, 10, 1, anneal=lambda step: 2.0)
 
 
 def test_drive_is_traced():
     t = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=1)
-    run = st.sample(t, 20, 12, anneal=st.schedules.linear(10, start=0.0), seed=0, progress=False)
-    assert run.trace["drive"].tolist() == pytest.approx([s / 10 for s in range(10)] + [1.0, 1.0])
+    run = st.svgd(t, 20, 12, anneal=st.schedules.linear(10, start=0.0), seed=0, progress=False)
+    assert run.history["drive"].tolist() == pytest.approx([s / 10 for s in range(10)] + [1.0, 1.0])
     assert "linear" in run.settings["anneal"]
 
 
@@ -64,7 +64,7 @@ def _run(anneal):
     init = 2.0 * torch.randn(4, 150, 2, generator=g, dtype=torch.float64)  # 4 ensembles of 150
     # the set-up recommended for separated modes (docs/kernels.md): broad start, no whitening,
     # RBF + linear kernel, Adam
-    run = st.sample(t, 150, 400, ensembles=4, init=init, precondition=None, anneal=anneal, seed=0, progress=False,
+    run = st.svgd(t, 150, 400, ensembles=4, init=init, precondition=None, anneal=anneal, seed=0, progress=False,
                     kernel=st.kernels.RBF() + st.kernels.Linear(), stepper=functools.partial(torch.optim.Adam, lr=0.05))
     return mode_shares(run.particles)
 

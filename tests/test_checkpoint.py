@@ -42,16 +42,16 @@ def make_target():
 
 @functools.lru_cache(maxsize=None)
 def uninterrupted():
-    return st.sample(make_target(), steps=STEPS, **RUN)
+    return st.svgd(make_target(), steps=STEPS, **RUN)
 
 
 def assert_same_run(a, b):
     # deterministic resume is the requirement; bitwise equality checked with torch.equal / array_equal
     assert torch.equal(a.particles, b.particles)
     assert torch.equal(a.lp, b.lp)
-    assert a.trace.keys() == b.trace.keys()
-    for key in a.trace:
-        np.testing.assert_array_equal(a.trace[key], b.trace[key], err_msg=key)
+    assert a.history.keys() == b.history.keys()
+    for key in a.history:
+        np.testing.assert_array_equal(a.history[key], b.history[key], err_msg=key)
     assert a.settings == b.settings
 
 
@@ -59,33 +59,33 @@ def assert_same_run(a, b):
 @given(stop_at=hst.integers(1, STEPS - 1))
 def test_resume_from_any_step_gives_the_uninterrupted_draws(tmp_path, stop_at):
     path = tmp_path / f"run{stop_at}.pt"
-    first = st.sample(make_target(), steps=stop_at, checkpoint=path, **RUN)
+    first = st.svgd(make_target(), steps=stop_at, checkpoint=path, **RUN)
     assert first.settings["steps"] == stop_at
-    resumed = st.sample(make_target(), steps=STEPS, resume=path, **RUN)
+    resumed = st.svgd(make_target(), steps=STEPS, resume=path, **RUN)
     assert_same_run(resumed, uninterrupted())
 
 
 def test_resume_restores_the_setup_instead_of_recomputing_it(tmp_path, monkeypatch):
     path = tmp_path / "run.pt"
-    st.sample(make_target(), steps=5, checkpoint=path, **RUN)
-    sample_module = importlib.import_module("stein_torch.sample")  # the module, not st.sample
+    st.svgd(make_target(), steps=5, checkpoint=path, **RUN)
+    setup_module = importlib.import_module("stein_torch.samplers.setup")  # where the set-up runs
 
     def no_setup(*args, **kwargs):
         raise AssertionError("the mode search ran again on resume")
 
-    monkeypatch.setattr(sample_module, "laplace_whitening", no_setup)  # mode search + Laplace whitening
-    resumed = st.sample(make_target(), steps=STEPS, resume=path, **{**RUN, "seed": None})  # seed from the file
+    monkeypatch.setattr(setup_module, "laplace_whitening", no_setup)  # mode search + Laplace whitening
+    resumed = st.svgd(make_target(), steps=STEPS, resume=path, **{**RUN, "seed": None})  # seed from the file
     assert_same_run(resumed, uninterrupted())
 
 
 def test_periodic_checkpoints_continue_the_same_run(tmp_path):
     path = tmp_path / "run.pt"
-    st.sample(make_target(), steps=STEPS, checkpoint=path, checkpoint_every=5, **RUN)
+    st.svgd(make_target(), steps=STEPS, checkpoint=path, checkpoint_every=5, **RUN)
     state = st_io.load_checkpoint(path)
     assert state["step"] == STEPS and state["stop_reason"] == "steps"
     # a finished run can be extended: its checkpoint is the state after the last step
-    longer = st.sample(make_target(), steps=STEPS + 6, **RUN)
-    extended = st.sample(make_target(), steps=STEPS + 6, resume=path, **RUN)
+    longer = st.svgd(make_target(), steps=STEPS + 6, **RUN)
+    extended = st.svgd(make_target(), steps=STEPS + 6, resume=path, **RUN)
     assert_same_run(extended, longer)
 
 
@@ -110,16 +110,16 @@ def test_optimizer_moments_and_minibatch_stream_are_part_of_the_resume(tmp_path,
     # observations: the shuffle generator, order and position within the epoch
     adam = functools.partial(torch.optim.Adam, lr=0.05)
     run = dict(particles=20, seed=8, precondition=None, stepper=adam)
-    full = st.sample(make_minibatch_target(), steps=8, **run)
+    full = st.svgd(make_minibatch_target(), steps=8, **run)
     path = tmp_path / "run.pt"
-    st.sample(make_minibatch_target(), steps=3, checkpoint=path, **run)
-    assert torch.equal(st.sample(make_minibatch_target(), steps=8, resume=path, **run).particles, full.particles)
+    st.svgd(make_minibatch_target(), steps=3, checkpoint=path, **run)
+    assert torch.equal(st.svgd(make_minibatch_target(), steps=8, resume=path, **run).particles, full.particles)
 
     # control: the same checkpoint with that part's state dropped gives other draws
     state = st_io.load_checkpoint(path)
     broken = dict(state, components={**state["components"], part: {}})
     st_io.save_checkpoint(tmp_path / "broken.pt", broken)
-    other = st.sample(make_minibatch_target(), steps=8, resume=tmp_path / "broken.pt", **run)
+    other = st.svgd(make_minibatch_target(), steps=8, resume=tmp_path / "broken.pt", **run)
     assert not torch.equal(other.particles, full.particles)
 
 
@@ -128,16 +128,16 @@ def test_optimizer_moments_and_minibatch_stream_are_part_of_the_resume(tmp_path,
     [
         lambda: st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=3),  # same dimension, other names
         lambda: st.Target(lambda p: -(p["a"] ** 2 + p["b"] ** 2 + p["c"] ** 2),
-                          params={"a": st.Param(), "b": st.Param(), "c": st.Param()}),  # constraint differs
-        lambda: st.Target(lambda p: -(p["a"] ** 2).sum(-1), params={"a": st.Param((4,))}),  # shapes differ
+                          latents={"a": st.Latent(), "b": st.Latent(), "c": st.Latent()}),  # constraint differs
+        lambda: st.Target(lambda p: -(p["a"] ** 2).sum(-1), latents={"a": st.Latent((4,))}),  # shapes differ
     ],
 )
 def test_a_checkpoint_of_another_target_is_refused(tmp_path, other):
     path = tmp_path / "run.pt"
-    st.sample(make_target(), steps=2, checkpoint=path, **RUN)
+    st.svgd(make_target(), steps=2, checkpoint=path, **RUN)
     before = path.read_bytes()
     with pytest.raises(ValueError, match=r"resume: the file was written for a different target"):
-        st.sample(other(), steps=4, resume=path, **RUN)
+        st.svgd(other(), steps=4, resume=path, **RUN)
     assert path.read_bytes() == before
 
 
@@ -147,10 +147,10 @@ def test_a_checkpoint_of_another_target_is_refused(tmp_path, other):
 )
 def test_a_checkpoint_with_other_settings_is_refused(tmp_path, change):
     path = tmp_path / "run.pt"
-    st.sample(make_target(), steps=2, checkpoint=path, **RUN)
+    st.svgd(make_target(), steps=2, checkpoint=path, **RUN)
     key = next(iter(change))
     with pytest.raises(ValueError, match=rf"resume: the checkpoint was written with other settings \({key}="):
-        st.sample(make_target(), steps=4, resume=path, **{**RUN, **change})
+        st.svgd(make_target(), steps=4, resume=path, **{**RUN, **change})
 
 
 class CountingRule:
@@ -303,3 +303,18 @@ def test_atomic_write_replaces_only_on_success(tmp_path):
         with st_io.atomic_write(tmp_path / "missing" / "x.txt"):
             pass
 
+
+
+@pytest.mark.parametrize("ensembles", [1, 2])
+def test_loading_a_checkpoint_after_rewhitening_gives_the_run_itself(tmp_path, ensembles):
+    # Default settings for 30 steps: the particles were re-whitened at step 25, one affine map per
+    # ensemble (B, d, d). The checkpoint read back by st.load must hold the run's own particles.
+    path = tmp_path / "run.pt"
+    run = st.svgd(make_target(), particles=16, ensembles=ensembles, steps=30, seed=3, checkpoint=path)
+    assert st_io.load_checkpoint(path)["affine"]["matrix"].shape == (ensembles, 3, 3)
+    loaded = st.load(path, make_target())
+    assert loaded.particles.shape == run.particles.shape == (ensembles, 16, 3)
+    torch.testing.assert_close(loaded.particles, run.particles, rtol=0, atol=1e-12)
+    for name in run.draws:
+        torch.testing.assert_close(loaded.draws[name], run.draws[name], rtol=1e-12, atol=1e-12)
+    assert loaded.settings["steps"] == 30

@@ -157,7 +157,7 @@ def log_joint(p):
     prior = torch.distributions.Normal(1.0, 3.0).log_prob(mu)
     return prior + torch.distributions.Normal(mu[..., None], 2.0).log_prob(y).sum(-1)
 
-{name} = st.Target(log_joint, params={{"mu": st.Param()}})
+{name} = st.Target(log_joint, latents={{"mu": st.Latent()}})
 """
 
 
@@ -276,6 +276,6 @@ def test_failed_write_leaves_the_old_file_and_no_temporary(tmp_path):
 def test_run_default_steps_follow_the_sampler_default():
     # the CLI keeps torch out of its import path, so it repeats the sampler's default cap
     from stein_torch import cli
-    from stein_torch.sample import DEFAULT_STEPS
+    from stein_torch.samplers.svgd import DEFAULT_STEPS
 
     assert cli.RUN_STEPS == DEFAULT_STEPS

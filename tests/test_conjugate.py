@@ -1,6 +1,6 @@
 """Default SVGD runs against closed-form posteriors.
 
-Floor (issue "Core engine"): with ``st.sample(target, particles=200, seed=0)`` and otherwise defaults,
+Floor (issue "Core engine"): with ``st.svgd(target, particles=200, seed=0)`` and otherwise defaults,
 every posterior mean within 0.05 posterior sd, every marginal sd within 5%, correlations within 0.05.
 
 Sources: the conjugate Gaussian linear model with known noise (closed form:
@@ -54,7 +54,7 @@ def test_two_dimensional_correlated_gaussian_posterior():
     target, mean, cov = _gaussian_linear_model(x, y, noise=1.0, prior_sd=3.0)
     corr = (cov[0, 1] / cov.diagonal().prod().sqrt()).item()
     assert abs(corr) > 0.6  # the check is about a correlated posterior
-    _check_gaussian(st.sample(target, particles=200, seed=0), mean, cov)
+    _check_gaussian(st.svgd(target, particles=200, seed=0), mean, cov)
 
 
 def test_twenty_dimensional_gaussian_posterior():
@@ -64,7 +64,7 @@ def test_twenty_dimensional_gaussian_posterior():
     x = (x - x.mean(0)) / x.std(0)
     y = data.target[:80] - data.target[:80].mean()
     target, mean, cov = _gaussian_linear_model(x, y, noise=0.5, prior_sd=1.0)
-    _check_gaussian(st.sample(target, particles=200, seed=0), mean, cov)
+    _check_gaussian(st.svgd(target, particles=200, seed=0), mean, cov)
 
 
 def test_gamma_poisson_rate_on_the_positive_scale():
@@ -74,7 +74,7 @@ def test_gamma_poisson_rate_on_the_positive_scale():
     target = st.Target.from_priors(
         {"rate": Gamma(a, b)}, log_likelihood=lambda p: Poisson(p["rate"][..., None]).log_prob(counts).sum(-1)
     )
-    run = st.sample(target, particles=200, seed=0)
+    run = st.svgd(target, particles=200, seed=0)
     post = scipy.stats.gamma(a + counts.sum().item(), scale=1 / (b + len(counts)))
     rate = run.draws["rate"][0].numpy()
     assert abs(rate.mean() - post.mean()) <= 0.05 * post.std()
@@ -86,9 +86,9 @@ def test_beta_binomial_probability_on_the_unit_interval():
     # Beta(2, 3) prior, 7 successes in 20 trials: posterior Beta(9, 16) (scipy.stats.beta moments).
     target = st.Target(
         lambda p: Beta(2.0, 3.0).log_prob(p["p"]) + Binomial(20, probs=p["p"]).log_prob(torch.tensor(7.0)),
-        params={"p": st.Param(constraint=constraints.unit_interval)},
+        latents={"p": st.Latent(support=constraints.unit_interval)},
     )
-    run = st.sample(target, particles=200, seed=0)
+    run = st.svgd(target, particles=200, seed=0)
     post = scipy.stats.beta(9, 16)
     p = run.draws["p"][0].numpy()
     assert abs(p.mean() - post.mean()) <= 0.05 * post.std()
@@ -99,9 +99,9 @@ def test_beta_binomial_probability_on_the_unit_interval():
 
 def test_same_seed_same_draws_and_ensembles_are_independent():
     target, mean, cov = _gaussian_linear_model(np.eye(3), np.array([1.0, -1.0, 0.5]), 1.0, 1.0)
-    a = st.sample(target, particles=50, steps=100, seed=3, ensembles=2)
-    b = st.sample(target, particles=50, steps=100, seed=3, ensembles=2)
-    c = st.sample(target, particles=50, steps=100, seed=4, ensembles=2)
+    a = st.svgd(target, particles=50, steps=100, seed=3, ensembles=2)
+    b = st.svgd(target, particles=50, steps=100, seed=3, ensembles=2)
+    c = st.svgd(target, particles=50, steps=100, seed=4, ensembles=2)
     assert torch.equal(a.draws["x"], b.draws["x"])
     assert not torch.equal(a.draws["x"], c.draws["x"])
     assert a.draws["x"].shape == (2, 50, 3)
@@ -114,6 +114,6 @@ def test_same_seed_same_draws_and_ensembles_are_independent():
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_float32_and_float64(dtype):
     target, mean, cov = _gaussian_linear_model(np.eye(2) * 2, np.array([1.0, -1.0]), 1.0, 1.0)
-    run = st.sample(target, particles=100, steps=200, seed=0, dtype=dtype)
+    run = st.svgd(target, particles=100, steps=200, seed=0, dtype=dtype)
     assert run.particles.dtype == dtype
     assert ((run.draws["x"][0].double().mean(0) - mean) / cov.diagonal().sqrt()).abs().max() < 0.05

@@ -36,7 +36,7 @@ def normal_mean_target(y, batch_size=None, single_value=False):
         def log_lik(p, d):
             return Normal(p["mu"][..., None], SIGMA).log_prob(d["y"])
     return st.Target(
-        lambda p: Normal(torch.zeros((), dtype=torch.float64), PRIOR_SD).log_prob(p["mu"]), params={"mu": st.Param()},
+        lambda p: Normal(torch.zeros((), dtype=torch.float64), PRIOR_SD).log_prob(p["mu"]), latents={"mu": st.Latent()},
         log_likelihood=log_lik, data={"y": y}, batch_size=batch_size, observed="y",
     )
 
@@ -92,7 +92,7 @@ def test_scores_in_observation_chunks_equal_the_single_pass(monkeypatch, batch_s
     # A score over many particle-observation pairs is summed over chunks of the observations; the
     # prior and the log-Jacobian (here of a positive noise scale) must count once. Reference: the same
     # target scored in one autograd pass.
-    import stein_torch.data as data_module
+    import stein_torch.model.data as data_module
 
     y = observations()
     t = st.Target.from_priors(
@@ -131,7 +131,7 @@ def test_minibatch_stream_is_seeded():
 def test_posterior_matches_conjugate_normal(batch_size):
     y = observations()
     mean, sd = closed_form(y)  # closed form (BDA3 section 2.5)
-    run = st.sample(normal_mean_target(y, batch_size), particles=100, steps=300, seed=0, progress=False)
+    run = st.svgd(normal_mean_target(y, batch_size), particles=100, steps=300, seed=0, progress=False)
     mu = run.draws["mu"].flatten()
     assert abs(float(mu.mean()) - mean) < 0.1 * sd
     # stochastic scores add spread (constant step, minibatch noise): a looser band for them
@@ -142,7 +142,7 @@ def test_posterior_matches_conjugate_normal(batch_size):
 
 def test_log_likelihood_group_matches_scipy_and_feeds_loo():
     y = observations()
-    run = st.sample(normal_mean_target(y), particles=60, steps=100, ensembles=2, seed=1, progress=False)
+    run = st.svgd(normal_mean_target(y), particles=60, steps=100, ensembles=2, seed=1, progress=False)
     idata = run.to_inference_data()
     assert {"log_likelihood", "observed_data"} <= set(idata.groups())
     ll = idata.log_likelihood["y"]
@@ -164,13 +164,13 @@ def test_log_likelihood_group_matches_scipy_and_feeds_loo():
 def test_compare_ranks_the_true_noise_model_first():
     y = observations()
     wrong = st.Target(
-        lambda p: Normal(torch.zeros((), dtype=torch.float64), PRIOR_SD).log_prob(p["mu"]), params={"mu": st.Param()},
+        lambda p: Normal(torch.zeros((), dtype=torch.float64), PRIOR_SD).log_prob(p["mu"]), latents={"mu": st.Latent()},
         log_likelihood=lambda p, d: Normal(p["mu"][..., None], 6 * SIGMA).log_prob(d["y"]),
         data={"y": y}, observed="y",
     )
     runs = {
-        "right": st.sample(normal_mean_target(y), particles=60, steps=100, seed=0, progress=False),
-        "wrong": st.sample(wrong, particles=60, steps=100, seed=0, progress=False),
+        "right": st.svgd(normal_mean_target(y), particles=60, steps=100, seed=0, progress=False),
+        "wrong": st.svgd(wrong, particles=60, steps=100, seed=0, progress=False),
     }
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -187,7 +187,7 @@ def test_from_priors_with_data_and_constant_data_group():
         lambda p, d: Normal((d["x"] @ p["w"].unsqueeze(-1)).squeeze(-1), 0.5).log_prob(d["y"]),
         data={"x": x, "y": y}, observed="y",
     )
-    run = st.sample(t, particles=50, steps=100, seed=0, progress=False)
+    run = st.svgd(t, particles=50, steps=100, seed=0, progress=False)
     idata = run.to_inference_data()
     assert idata.constant_data["x"].dims == ("obs", "x_dim_1")
     # least squares (numpy.linalg.lstsq) is the posterior mean up to the weak prior
@@ -200,19 +200,19 @@ def test_bad_data_is_rejected_with_names():
     prior = lambda p: -p["mu"] ** 2  # noqa: E731
     lik = lambda p, d: -(d["y"] - p["mu"][..., None]) ** 2  # noqa: E731
     with pytest.raises(ValueError, match=r"'y': 120.*'x': 7"):
-        st.Target(prior, params={"mu": st.Param()}, log_likelihood=lik, data={"y": y, "x": torch.ones(7)})
+        st.Target(prior, latents={"mu": st.Latent()}, log_likelihood=lik, data={"y": y, "x": torch.ones(7)})
     with pytest.raises(ValueError, match="batch_size == 500"):
-        st.Target(prior, params={"mu": st.Param()}, log_likelihood=lik, data={"y": y}, batch_size=500)
+        st.Target(prior, latents={"mu": st.Latent()}, log_likelihood=lik, data={"y": y}, batch_size=500)
     with pytest.raises(TypeError, match="batch_size must be an int"):
-        st.Target(prior, params={"mu": st.Param()}, log_likelihood=lik, data={"y": y}, batch_size=2.5)
+        st.Target(prior, latents={"mu": st.Latent()}, log_likelihood=lik, data={"y": y}, batch_size=2.5)
     with pytest.raises(ValueError, match="go together"):
-        st.Target(prior, params={"mu": st.Param()}, data={"y": y})
+        st.Target(prior, latents={"mu": st.Latent()}, data={"y": y})
     with pytest.raises(ValueError, match="observed"):
-        st.Target(prior, params={"mu": st.Param()}, log_likelihood=lik, data={"y": y}, observed="z")
+        st.Target(prior, latents={"mu": st.Latent()}, log_likelihood=lik, data={"y": y}, observed="z")
     with pytest.raises(ValueError, match="scalar"):
-        st.Target(prior, params={"mu": st.Param()}, log_likelihood=lik, data={"y": torch.tensor(1.0)})
+        st.Target(prior, latents={"mu": st.Latent()}, log_likelihood=lik, data={"y": torch.tensor(1.0)})
     with pytest.raises(TypeError, match="non-empty dict"):
-        st.Target(prior, params={"mu": st.Param()}, log_likelihood=lik, data=[y])
-    summed = st.Target(prior, params={"mu": st.Param()}, log_likelihood=lambda p, d: lik(p, d).sum(-1), data={"y": y})
+        st.Target(prior, latents={"mu": st.Latent()}, log_likelihood=lik, data=[y])
+    summed = st.Target(prior, latents={"mu": st.Latent()}, log_likelihood=lambda p, d: lik(p, d).sum(-1), data={"y": y})
     with pytest.raises(ValueError, match="one term per observation"):
         summed.log_prob(torch.zeros(3, 1, dtype=torch.float64))

@@ -12,7 +12,8 @@ import pytest
 import torch
 
 import stein_torch as st
-from stein_torch.sample import FAULT_PATIENCE, MAX_BACKTRACK
+from stein_torch.samplers.faults import MAX_BACKTRACK
+from stein_torch.samplers.svgd import FAULT_PATIENCE
 
 MEAN = torch.tensor([3.0, 0.0], dtype=torch.float64)
 SD = 0.5
@@ -59,7 +60,7 @@ def test_faulty_particles_are_shrunk_and_the_others_take_the_fault_free_step(fn)
         before = faulty.u.clone()
         faulty.step()
         reference.step()
-        if faulty._trace["faults"][-1]:
+        if faulty.history["faults"][-1]:
             break
         # no fault yet: both runs are the same computation (common practice: bitwise determinism on CPU)
         assert torch.equal(faulty.u, reference.u)
@@ -68,7 +69,7 @@ def test_faulty_particles_are_shrunk_and_the_others_take_the_fault_free_step(fn)
     proposal = reference.u  # where every particle would have gone without the hole
     hit = in_hole(proposal[0])
     # the fault count in the trace is the number of particles whose proposal fell in the hole
-    assert faulty._trace["faults"][-1] == int(hit.sum())
+    assert faulty.history["faults"][-1] == int(hit.sum())
     # the other particles are unaffected: bit for bit the fault-free step
     assert torch.equal(faulty.u[0, ~hit], proposal[0, ~hit])
     # the faulty ones moved back along their own step, by a power of two, out of the hole
@@ -82,14 +83,14 @@ def test_faulty_particles_are_shrunk_and_the_others_take_the_fault_free_step(fn)
 
 def test_a_run_through_the_hole_reaches_the_target_and_raising_equals_nan():
     runs = {
-        fn.__name__: st.sample(st.Target(fn, dim=2), PARTICLES, 150, init=start(), precondition=None, seed=0)
+        fn.__name__: st.svgd(st.Target(fn, dim=2), PARTICLES, 150, init=start(), precondition=None, seed=0)
         for fn in (nan_in_hole, raises_in_hole)
     }
     nan_run, raise_run = runs["nan_in_hole"], runs["raises_in_hole"]
-    assert nan_run.trace["faults"].sum() > 0  # the hole was hit and counted
+    assert nan_run.history["faults"].sum() > 0  # the hole was hit and counted
     # a function that raises is treated exactly like one that returns NaN there
     assert torch.equal(nan_run.particles, raise_run.particles)
-    np.testing.assert_array_equal(nan_run.trace["faults"], raise_run.trace["faults"])
+    np.testing.assert_array_equal(nan_run.history["faults"], raise_run.history["faults"])
     x = nan_run.draws["x"][0]
     assert torch.isfinite(x).all() and torch.isfinite(nan_run.lp).all()
     # closed form: mean (3, 0), sd 0.5 per coordinate; 40 particles, tolerance common practice
@@ -108,11 +109,11 @@ def test_a_persistent_fault_raises_with_step_count_and_hint():
     with pytest.raises(FloatingPointError) as info:
         run.run(400)
     message = str(info.value)
-    faults = run._trace["faults"]
+    faults = run.history["faults"]
     # it gives up after FAULT_PATIENCE consecutive faulty steps (the documented rule), naming the step
     assert all(f > 0 for f in faults[-(FAULT_PATIENCE - 1):])
     assert f"step {run.step_count + 1}" in message
-    assert f"of {PARTICLES} particles" in message and "Hint" in message and "constraint" in message
+    assert f"of {PARTICLES} particles" in message and "Hint" in message and "support" in message
     assert torch.isfinite(run.u).all()  # the particles it holds are still the last finite ones
 
 
@@ -124,7 +125,7 @@ def test_a_persistent_raise_names_the_error_and_keeps_the_checkpoint(tmp_path):
 
     path = tmp_path / "run.pt"
     with pytest.raises(FloatingPointError, match="ValueError: scale must be positive"):
-        st.sample(st.Target(raising_wall, dim=2), PARTICLES, 400, init=start(), precondition=None, seed=0,
+        st.svgd(st.Target(raising_wall, dim=2), PARTICLES, 400, init=start(), precondition=None, seed=0,
                   checkpoint=path, checkpoint_every=5)
     saved = st.load(path, st.Target(raising_wall, dim=2))  # still a valid file with finite particles
     assert saved.settings["steps"] % 5 == 0 and torch.isfinite(saved.particles).all()
@@ -150,4 +151,4 @@ def test_a_function_that_raises_everywhere_surfaces_its_own_error():
         raise ZeroDivisionError("bug in the model")
 
     with pytest.raises(ZeroDivisionError, match="bug in the model"):
-        st.sample(st.Target(broken, dim=2), 10, 5, seed=0)
+        st.svgd(st.Target(broken, dim=2), 10, 5, seed=0)

@@ -27,7 +27,7 @@ def marginal_sd(run):
 @pytest.mark.parametrize("kernel", [None, st.kernels.RBF() + st.kernels.Linear()], ids=["default", "rbf+linear"])
 def test_default_settings_keep_spread(kernel):
     # default kernel IMQ() + Linear(radius=2.0), and RBF() + Linear(); Laplace start
-    run = st.sample(standard_normal(), N, 200, kernel=kernel, seed=0, progress=False)
+    run = st.svgd(standard_normal(), N, 200, kernel=kernel, seed=0, progress=False)
     sd = marginal_sd(run)
     assert torch.all((sd - 1).abs() < 0.1), sd  # closed form: sd 1 in every coordinate
 
@@ -35,7 +35,7 @@ def test_default_settings_keep_spread(kernel):
 def test_rbf_plus_linear_without_preconditioning_from_a_bad_start():
     g = torch.Generator().manual_seed(1)
     init = 0.5 * torch.randn(N, DIM, generator=g, dtype=torch.float64) + 0.3  # too narrow, off-centre
-    run = st.sample(standard_normal(), N, 300, kernel=st.kernels.RBF() + st.kernels.Linear(), init=init,
+    run = st.svgd(standard_normal(), N, 300, kernel=st.kernels.RBF() + st.kernels.Linear(), init=init,
                     precondition=None, seed=0, progress=False)
     sd = marginal_sd(run)
     assert torch.all((sd - 1).abs() < 0.1), sd
@@ -47,6 +47,6 @@ def test_plain_rbf_underestimates_spread():
     # the failure the linear part cures (documented figure: about 0.3)
     # Adam reaches the RBF's collapsed fixed point within 300 steps (the default gradient step is slower)
     adam = functools.partial(torch.optim.Adam, lr=0.05)
-    run = st.sample(standard_normal(), N, 300, kernel=st.kernels.RBF(), precondition=None, seed=0, progress=False,
+    run = st.svgd(standard_normal(), N, 300, kernel=st.kernels.RBF(), precondition=None, seed=0, progress=False,
                     stepper=adam, stop=False)
     assert float(marginal_sd(run).max()) < 0.6

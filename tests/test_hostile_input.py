@@ -1,7 +1,7 @@
 """Hostile and careless input, property-based: every bad argument gets a ValueError or TypeError whose
 message names the argument, nothing hangs (sizes are small), and no failed call touches an existing
 checkpoint. Which values are valid is the documented contract of each argument (docstrings of
-``st.sample``, ``st.Target``, ``st.Param`` and the kernels); the error style (exception class by kind,
+``st.sample``, ``st.Target``, ``st.Latent`` and the kernels); the error style (exception class by kind,
 argument named) is common practice (torch.optim, scikit-learn ``check_scalar``).
 """
 
@@ -35,7 +35,7 @@ TARGET = st.Target(gaussian, dim=2)
 @pytest.fixture(scope="module")
 def good_checkpoint(tmp_path_factory):
     path = tmp_path_factory.mktemp("hostile") / "good.pt"
-    st.sample(TARGET, checkpoint=path, **FAST)
+    st.svgd(TARGET, checkpoint=path, **FAST)
     return path
 
 
@@ -43,7 +43,7 @@ def rejected(name, checkpoint, target=TARGET, **kwargs):
     """Call st.sample with one bad argument; the error must name it and the checkpoint stay intact."""
     before = checkpoint.read_bytes()
     with pytest.raises((ValueError, TypeError)) as info:
-        st.sample(target, **{**FAST, "checkpoint": checkpoint, **kwargs})
+        st.svgd(target, **{**FAST, "checkpoint": checkpoint, **kwargs})
     assert name in str(info.value), str(info.value)
     assert checkpoint.read_bytes() == before
     assert sorted(os.listdir(checkpoint.parent)) == ["good.pt"]  # no stray temporary file either
@@ -107,11 +107,11 @@ def test_init_tensors_of_any_shape_dtype_and_value(good_checkpoint, shape, dtype
     if tuple(shape) not in ((4, 2), (1, 4, 2)) or not finite:
         rejected("init", good_checkpoint, init=values)
     elif size < 1e6:  # a usable start: the run goes through and stays finite
-        run = st.sample(TARGET, init=values, **FAST)
+        run = st.svgd(TARGET, init=values, **FAST)
         assert torch.isfinite(run.draws["x"]).all()
     else:  # huge but finite: either refused (log density overflows) or run with finite draws
         try:
-            run = st.sample(TARGET, init=values, **FAST)
+            run = st.svgd(TARGET, init=values, **FAST)
         except (ValueError, TypeError) as err:
             assert "init" in str(err)
         else:
@@ -128,7 +128,7 @@ def test_init_of_the_wrong_kind(good_checkpoint, value):
 
 def test_init_for_named_parameters_outside_the_support(good_checkpoint):
     target = st.Target(lambda p: -p["tau"] - 0.5 * p["mu"] ** 2,
-                       params={"mu": st.Param(), "tau": st.Param(constraint=constraints.positive)})
+                       latents={"mu": st.Latent(), "tau": st.Latent(support=constraints.positive)})
     err = rejected("init", good_checkpoint, target=target,
                    init={"mu": torch.zeros(4), "tau": torch.tensor([1.0, -1.0, 2.0, 0.0])})
     assert "2 of 4 values lie outside the support" in str(err)
@@ -192,18 +192,18 @@ def test_kernel_shape_settings(value, setting):
 @CHECK
 @given(shape=hst.one_of(hst.lists(hst.integers(-2, 3), min_size=1, max_size=3).filter(lambda s: min(s) < 1),
                         hst.just(2.5), hst.just("3"), hst.just((2.0,)), hst.just((True,))))
-def test_param_shapes(shape):
+def test_latent_shapes(shape):
     with pytest.raises((ValueError, TypeError), match="shape"):
-        st.Param(tuple(shape) if isinstance(shape, list) else shape)
+        st.Latent(tuple(shape) if isinstance(shape, list) else shape)
 
 
 @pytest.mark.parametrize("constraint", [
     "positive", None, constraints.integer_interval(0, 3), constraints.nonnegative_integer, constraints.boolean,
     constraints.interval(0.0, float("nan")), constraints.interval(2.0, 1.0), constraints.greater_than(float("nan")),
 ])
-def test_param_constraints_that_cannot_be_sampled(constraint):
-    with pytest.raises((ValueError, TypeError), match="constraint"):
-        st.Param((2,), constraint)
+def test_latent_supports_that_cannot_be_sampled(constraint):
+    with pytest.raises((ValueError, TypeError), match="support"):
+        st.Latent((2,), constraint)
 
 
 @CHECK
@@ -213,17 +213,17 @@ def test_target_dim(dim):
         st.Target(gaussian, dim=dim)
 
 
-@pytest.mark.parametrize("params", [{}, [("a", st.Param())], {"a": (2,)}, {"1a": st.Param()}, {"a b": st.Param()}, "a"])
-def test_target_params(params):
-    with pytest.raises((ValueError, TypeError), match="param"):
-        st.Target(gaussian, params=params)
+@pytest.mark.parametrize("latents", [{}, [("a", st.Latent())], {"a": (2,)}, {"1a": st.Latent()}, {"a b": st.Latent()}, "a"])
+def test_target_latents(latents):
+    with pytest.raises((ValueError, TypeError), match="latent"):
+        st.Target(gaussian, latents=latents)
 
 
-def test_target_needs_exactly_one_of_dim_and_params():
-    with pytest.raises(ValueError, match="dim= .* or params="):
+def test_target_needs_exactly_one_of_dim_and_latents():
+    with pytest.raises(ValueError, match="dim= .* or latents="):
         st.Target(gaussian)
-    with pytest.raises(ValueError, match="dim= .* or params="):
-        st.Target(gaussian, dim=2, params={"a": st.Param()})
+    with pytest.raises(ValueError, match="dim= .* or latents="):
+        st.Target(gaussian, dim=2, latents={"a": st.Latent()})
     with pytest.raises(TypeError, match="log_prob must be callable"):
         st.Target("not a function", dim=2)
 
@@ -250,7 +250,7 @@ def test_log_prob_that_is_not_a_tensor(good_checkpoint, value):
 @pytest.mark.parametrize("value", [3, "/no/such/folder/run.pt", ".", ""])
 def test_bad_checkpoint_paths(value):
     with pytest.raises((ValueError, TypeError), match="checkpoint"):
-        st.sample(TARGET, **{**FAST, "checkpoint": value})
+        st.svgd(TARGET, **{**FAST, "checkpoint": value})
 
 
 @pytest.mark.parametrize("arg, value", [("resume", 3.5), ("resume", ["run.pt"]), ("progress", "yes")])
@@ -260,12 +260,12 @@ def test_bad_resume_and_progress(good_checkpoint, arg, value):
 
 def test_checkpoint_every_needs_a_checkpoint():
     with pytest.raises(ValueError, match="checkpoint_every is set but checkpoint"):
-        st.sample(TARGET, checkpoint_every=3, **FAST)
+        st.svgd(TARGET, checkpoint_every=3, **FAST)
 
 
 def test_resume_beyond_the_requested_steps(good_checkpoint):
     with pytest.raises(ValueError, match="steps: the checkpoint is already at step 1, beyond steps=0"):
-        st.sample(TARGET, **{**FAST, "steps": 0, "resume": good_checkpoint})
+        st.svgd(TARGET, **{**FAST, "steps": 0, "resume": good_checkpoint})
 
 
 # ---------------------------------------------------------------------- data given with a target
@@ -282,12 +282,12 @@ def test_data_of_mismatched_lengths_or_bad_batch_sizes(lengths, batch_size):
     same = len(set(lengths)) == 1 and lengths[0] > 0
     good_batch = batch_size is None or (isinstance(batch_size, int) and 1 <= batch_size <= lengths[0])
     if same and good_batch:
-        target = st.Target(lambda p: -p["mu"] ** 2, params={"mu": st.Param()}, log_likelihood=log_likelihood,
+        target = st.Target(lambda p: -p["mu"] ** 2, latents={"mu": st.Latent()}, log_likelihood=log_likelihood,
                            data=data, batch_size=batch_size)
         assert target.dim == 1
         return
     with pytest.raises((ValueError, TypeError)) as info:
-        st.Target(lambda p: -p["mu"] ** 2, params={"mu": st.Param()}, log_likelihood=log_likelihood,
+        st.Target(lambda p: -p["mu"] ** 2, latents={"mu": st.Latent()}, log_likelihood=log_likelihood,
                   data=data, batch_size=batch_size)
     message = str(info.value)
     assert ("data" in message) or ("batch_size" in message), message

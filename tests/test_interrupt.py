@@ -54,13 +54,13 @@ def test_sigint_in_process_returns_the_run_so_far_and_resumes_exactly(tmp_path, 
 
     path = tmp_path / f"run{stop_in}.pt"
     handler = signal.getsignal(signal.SIGINT)
-    run = st.sample(st.Target(log_prob, dim=3), checkpoint=path, **run_kwargs())
+    run = st.svgd(st.Target(log_prob, dim=3), checkpoint=path, **run_kwargs())
     assert signal.getsignal(signal.SIGINT) is handler  # the previous handler is back
     assert run.stop_reason == "interrupted" and run.settings["steps"] == stop_in
     saved = st_io.load_checkpoint(path)
     assert saved["step"] == stop_in and saved["stop_reason"] == "interrupted"
-    resumed = st.sample(st.Target(scaled_normal, dim=3), resume=path, **run_kwargs())
-    full = st.sample(st.Target(scaled_normal, dim=3), **run_kwargs())
+    resumed = st.svgd(st.Target(scaled_normal, dim=3), resume=path, **run_kwargs())
+    full = st.svgd(st.Target(scaled_normal, dim=3), **run_kwargs())
     assert resumed.stop_reason == "steps"
     assert torch.equal(resumed.particles, full.particles)  # bitwise: requirement of deterministic resume
 
@@ -77,7 +77,7 @@ def test_a_keyboard_interrupt_inside_a_step_keeps_the_last_consistent_checkpoint
 
     path = tmp_path / "run.pt"
     with pytest.warns(RuntimeWarning, match="interrupted inside step 7"):
-        run = st.sample(st.Target(log_prob, dim=3), checkpoint=path, checkpoint_every=5, **run_kwargs())
+        run = st.svgd(st.Target(log_prob, dim=3), checkpoint=path, checkpoint_every=5, **run_kwargs())
     assert run.stop_reason == "interrupted" and run.settings["steps"] == 6
     assert st_io.load_checkpoint(path)["step"] == 5  # the last state saved at a step boundary
     assert torch.isfinite(run.particles).all()
@@ -100,11 +100,11 @@ CHILD = textwrap.dedent(
     kwargs = dict(particles=20, steps=steps, seed=5, precondition=None, progress=False)
     target = st.Target(log_prob, dim=3)
     if mode in ("interrupt", "abort"):
-        run = st.sample(target, checkpoint=path, checkpoint_every=4, **kwargs)
+        run = st.svgd(target, checkpoint=path, checkpoint_every=4, **kwargs)
     elif mode == "resume":
-        run = st.sample(target, resume=path, **kwargs)
+        run = st.svgd(target, resume=path, **kwargs)
     else:
-        run = st.sample(target, **kwargs)
+        run = st.svgd(target, **kwargs)
     print(f"stop_reason={run.stop_reason} steps={run.settings['steps']}", flush=True)
     torch.save({"particles": run.particles, "lp": run.lp}, out)
     """

@@ -13,8 +13,9 @@ import torch
 from sklearn.gaussian_process import kernels as skk
 
 import stein_torch as st
-from stein_torch.kernels import median_bandwidth
+from stein_torch.kernels.bandwidth import median_bandwidth
 from stein_torch.stein import Scratch, ksd, svgd_direction
+from stein_torch.stein.reference import radial_gram, reference_direction
 
 torch.set_default_dtype(torch.float64)
 
@@ -99,27 +100,15 @@ def test_profile_curvature_matches_autograd(kernel):
     np.testing.assert_allclose(kernel.profile(s.detach())[1].numpy(), auto1.numpy(), rtol=1e-9)
 
 
-def _direction_double_loop(x, s, kernel, h):
-    """phi(x_i) = 1/N sum_j [k(x_j, x_i) s_j + grad_{x_j} k(x_j, x_i)], one pair at a time by autograd."""
-    n = x.shape[0]
-    out = torch.zeros_like(x)
-    for i in range(n):
-        for j in range(n):
-            xj = x[j : j + 1].clone().requires_grad_(True)
-            k = kernel(xj, x[i : i + 1], bandwidth=h)[0, 0]
-            # the self-pair's gradient is (2/h) f'(0) * 0 = 0 (autograd of sqrt(0) would give NaN)
-            g = torch.autograd.grad(k, xj)[0][0] if j != i else torch.zeros(x.shape[1])
-            out[i] += k.detach() * s[j] + g
-    return out / n
-
-
-@pytest.mark.parametrize("kernel", [st.kernels.RBF(), st.kernels.IMQ(), st.kernels.Matern(2.5)], ids=repr)
+@pytest.mark.parametrize("kernel", [st.kernels.RBF(), st.kernels.IMQ(), st.kernels.Matern(2.5), st.kernels.Matern(0.5),
+                                    st.kernels.GammaExponential(1.3)], ids=repr)
 def test_direction_matches_double_sum(kernel):
-    # The chunked matmul engine against the defining double sum (arXiv:1608.04471).
+    # The chunked matmul engine against the defining double sum (arXiv:1608.04471), written plainly
+    # with autograd in stein_torch.stein.reference (no code shared with the engine).
     g = torch.Generator().manual_seed(2)
     x, s = torch.randn(8, 3, generator=g), torch.randn(8, 3, generator=g)
     h = float(median_bandwidth(x))
-    ref = _direction_double_loop(x, s, kernel, h)
+    ref = reference_direction(x, s, radial_gram(kernel, h))
     fixed = type(kernel)(**{**_settings(kernel), "bandwidth": h})
     for chunk in (1 << 22, 20):  # one block and several row blocks
         ours = svgd_direction(x[None], s[None], fixed, chunk_elements=chunk)[0]
@@ -236,3 +225,30 @@ def test_median_heuristic_exact_and_subsampled():
 def test_invalid_kernel_settings(make, match):
     with pytest.raises((ValueError, TypeError), match=match):
         make()
+
+
+@pytest.mark.parametrize("kernel", [st.kernels.IMQ() + st.kernels.Linear(radius=2.0), st.kernels.RBF(),
+                                    st.kernels.TargetWeighted(st.kernels.Matern(1.5))], ids=repr)
+@pytest.mark.parametrize("chunk", [1 << 22, 500])
+def test_rows_give_the_same_rows_of_the_full_direction(kernel, chunk):
+    # A process owning rows 13..39 of 60 particles computes exactly those rows of the direction
+    # (sums over all 60); the full direction is the reference.
+    g = torch.Generator().manual_seed(8)
+    x, s, lp = torch.randn(2, 60, 3, generator=g), torch.randn(2, 60, 3, generator=g), torch.randn(2, 60, generator=g)
+    full = svgd_direction(x, s, kernel, log_prob=lp, chunk_elements=chunk)
+    part = svgd_direction(x, s, kernel, log_prob=lp, rows=slice(13, 40), chunk_elements=chunk)
+    torch.testing.assert_close(part, full[:, 13:40], rtol=1e-12, atol=1e-13)
+    with pytest.raises(ValueError, match="rows"):
+        svgd_direction(x, s, kernel, log_prob=lp, rows=slice(40, 13))
+
+
+def test_ksd_row_sums_add_up_to_the_whole():
+    # Partial KSD sums over a partition of the rows add up to the sums over all rows.
+    from stein_torch.stein.ksd import default_ksd_kernel, ksd_from_sums, ksd_sums
+
+    g = torch.Generator().manual_seed(9)
+    x, s = torch.randn(2, 50, 3, generator=g), torch.randn(2, 50, 3, generator=g)
+    parts = [ksd_sums(x, s, default_ksd_kernel(), rows=r) for r in (slice(0, 17), slice(17, 50))]
+    pairs, diagonal = (sum(p[i] for p in parts) for i in (0, 1))
+    torch.testing.assert_close(ksd_from_sums(pairs, diagonal, 50), ksd(x, s), rtol=1e-12, atol=0)
+    torch.testing.assert_close(ksd_from_sums(pairs, diagonal, 50, ustat=True), ksd(x, s, ustat=True), rtol=1e-10, atol=1e-14)

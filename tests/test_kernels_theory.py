@@ -15,8 +15,8 @@ from sklearn.gaussian_process.kernels import RBF as SkRBF
 from sklearn.gaussian_process.kernels import Matern as SkMatern
 
 import stein_torch as st
-from stein_torch.kernels import GUARD
-from stein_torch.stein import radial_direction
+from stein_torch.kernels.base import GUARD
+from stein_torch.stein.engine import radial_direction
 
 DT = torch.float64
 SINGULAR = [st.kernels.GammaExponential(0.5), st.kernels.GammaExponential(1.0), st.kernels.Matern(0.5)]
@@ -263,7 +263,7 @@ def test_target_weighted_moves_particles_to_the_target():
     t = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=1)
     g = torch.Generator().manual_seed(12)
     init = 1.3 * torch.randn(100, 1, generator=g, dtype=DT) + 0.2
-    run = st.sample(t, 100, 400, kernel=st.kernels.TargetWeighted(st.kernels.Matern(1.5)) + st.kernels.Linear(),
+    run = st.svgd(t, 100, 400, kernel=st.kernels.TargetWeighted(st.kernels.Matern(1.5)) + st.kernels.Linear(),
                     init=init, precondition=None, seed=0, progress=False)
     x = run.particles[0, :, 0]
     assert abs(float(x.mean())) < 0.05

@@ -16,7 +16,7 @@ import torch
 from torch.distributions import constraints
 
 import stein_torch as st
-from stein_torch.langevin import TARGET_ACCEPT
+from stein_torch.samplers.langevin import TARGET_ACCEPT
 
 
 def correlated_gaussian(dim=3):
@@ -60,7 +60,7 @@ def test_acceptance_is_tuned_near_the_optimal_rate():
     # acceptance of the kept draws lies near it.
     target, _, _ = correlated_gaussian(dim=10)
     run = st.langevin(target, chains=4, draws=500, warmup=500, seed=1)
-    accept = run.sample_stats["accept_prob"]
+    accept = run.sample_stats["acceptance_rate"]
     assert accept.shape == (4, 500)
     assert abs(accept.mean() - TARGET_ACCEPT) < 0.1
     steps = run.sample_stats["step_size"]
@@ -77,7 +77,7 @@ def test_acceptance_is_tuned_near_the_optimal_rate():
     ],
 )
 def test_mala_matches_scipy_moments_on_constrained_laws(constraint, log_prob, law):
-    target = st.Target(log_prob, dim=1, constraint=constraint)
+    target = st.Target(log_prob, dim=1, support=constraint)
     run = st.langevin(target, chains=8, draws=1000, warmup=300, seed=2)
     idata = run.to_inference_data()
     assert mcse_bound(idata, "x", np.array([law.mean()])).all()  # scipy.stats mean within 4 MCSE
@@ -101,15 +101,15 @@ def test_ula_bias_matches_its_stationary_variance_and_mala_removes_it():
 def test_result_shapes_inference_data_and_seed():
     target = st.Target(
         lambda p: -0.5 * (p["a"] ** 2).sum(-1) - p["b"],  # a ~ N(0, I_2), b ~ Exp(1)
-        params={"a": st.Param((2,)), "b": st.Param(constraint=constraints.positive)},
+        latents={"a": st.Latent((2,)), "b": st.Latent(support=constraints.positive)},
     )
     run = st.langevin(target, chains=3, draws=50, warmup=20, seed=7)
     assert run.draws["a"].shape == (3, 50, 2) and run.draws["b"].shape == (3, 50)
     assert run.settings["grad_evals"] == 3 * (1 + 20 + 50)
-    assert run.trace["accept_prob"].shape == (70, 3)
+    assert run.history["acceptance_rate"].shape == (70, 3)
     idata = run.to_inference_data()
     assert idata.posterior.sizes["chain"] == 3 and idata.posterior.sizes["draw"] == 50
-    assert idata.sample_stats["accept_prob"].shape == (3, 50)
+    assert idata.sample_stats["acceptance_rate"].shape == (3, 50)
     assert idata.attrs["method"] == "mala"
     again = st.langevin(target, chains=3, draws=50, warmup=20, seed=7)
     assert torch.equal(run.particles, again.particles)
@@ -135,3 +135,36 @@ def test_bad_input_is_named():
         st.langevin(target, chains=2, init=torch.zeros(3, 2))
     with pytest.raises(TypeError, match="target"):
         st.langevin(lambda x: x)
+
+
+def test_a_model_that_raises_for_some_proposals_is_contained():
+    # The model raises (as a Cholesky factorisation does at an extreme length-scale) wherever x0 > 1.5;
+    # such proposals are rejected and counted, so the chains sample N(0, 1) truncated at 1.5 in x0
+    # (scipy.stats.truncnorm) and N(0, 1) in x1.
+    def log_prob(x):
+        if bool((x[..., 0] > 1.5).any()):
+            raise torch.linalg.LinAlgError("cholesky: the matrix is not positive-definite")
+        return -0.5 * (x**2).sum(-1)
+
+    run = st.langevin(st.Target(log_prob, dim=2), chains=20, draws=600, warmup=300, seed=4)
+    assert run.history["faults"].sum() > 0  # proposals were rejected, not fatal
+    x = run.draws["x"].reshape(-1, 2).numpy()
+    assert np.isfinite(x).all() and x[:, 0].max() <= 1.5
+    truncated = scipy.stats.truncnorm(-np.inf, 1.5)
+    assert abs(x[:, 0].mean() - truncated.mean()) < 0.1 and abs(x[:, 0].std() - truncated.std()) < 0.1
+    assert abs(x[:, 1].mean()) < 0.1 and abs(x[:, 1].std() - 1) < 0.1
+
+
+def test_langevin_resumes_bit_for_bit(tmp_path):
+    # A run checkpointed in its warmup and continued from the file equals the uninterrupted run
+    # (bitwise determinism on CPU, common practice).
+    target, _, _ = correlated_gaussian()
+    full = st.langevin(target, chains=3, draws=30, warmup=20, seed=5)
+    sampler = st.Langevin(target, chains=3, draws=30, warmup=20, seed=5)
+    sampler.run(steps=12, checkpoint=tmp_path / "mala.pt")
+    partial = st.load(tmp_path / "mala.pt", target)  # a checkpoint in the warmup holds no draws yet
+    assert partial.particles.shape == (3, 0, 3)
+    resumed = st.langevin(target, chains=3, draws=30, warmup=20, seed=5, resume=tmp_path / "mala.pt")
+    assert torch.equal(resumed.particles, full.particles)
+    np.testing.assert_array_equal(resumed.sample_stats["acceptance_rate"], full.sample_stats["acceptance_rate"])
+    np.testing.assert_array_equal(resumed.settings["step_size"], full.settings["step_size"])

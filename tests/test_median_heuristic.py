@@ -7,7 +7,7 @@ import pytest
 import torch
 from scipy.spatial.distance import pdist
 
-from stein_torch.kernels import MEDIAN_PAIRS, median_bandwidth
+from stein_torch.kernels.bandwidth import MEDIAN_PAIRS, median_bandwidth
 
 
 @pytest.mark.parametrize("dtype, rel", [(torch.float64, 1e-12), (torch.float32, 1e-5)])

@@ -147,7 +147,7 @@ def test_sampling_predict_and_predictions_group():
     net = network()
     before = {k: v.clone() for k, v in net.state_dict().items()}
     tgt = module_target(net)
-    run = st.sample(tgt, particles=12, steps=150, ensembles=2, seed=0, progress=False)
+    run = st.svgd(tgt, particles=12, steps=150, ensembles=2, seed=0, progress=False)
     assert run.settings["precondition"] == "None" and "Linear" not in run.settings["kernel"]  # module hints
     for k, v in net.state_dict().items():  # the user's module is left untouched
         assert torch.equal(v, before[k])
@@ -172,15 +172,15 @@ def test_sampling_predict_and_predictions_group():
 
 def test_predictive_hook_on_a_plain_target_and_errors():
     x, y = toy_data()
-    tgt = st.Target(lambda p: Normal(0.0, 1.0).log_prob(p["a"]), params={"a": st.Param()},
+    tgt = st.Target(lambda p: Normal(0.0, 1.0).log_prob(p["a"]), latents={"a": st.Latent()},
                     log_likelihood=lambda p, d: Normal(p["a"][..., None] * d["x"][:, 0], 1.0).log_prob(d["y"]),
                     data={"x": x, "y": y}, predictive=lambda p, xs: p["a"][..., None] * xs[:, 0])
-    run = st.sample(tgt, particles=10, steps=20, seed=0, progress=False)
+    run = st.svgd(tgt, particles=10, steps=20, seed=0, progress=False)
     out = run.predict(x[:5])
     torch.testing.assert_close(out, run.draws["a"][..., None] * x[:5, 0].double())
     plain = st.Target(lambda v: -(v**2).sum(-1), dim=1)
     with pytest.raises(ValueError, match="no predictive function"):
-        st.sample(plain, particles=5, steps=1, seed=0, progress=False).predict(x)
+        st.svgd(plain, particles=5, steps=1, seed=0, progress=False).predict(x)
     with pytest.raises(ValueError, match="prob must be"):
         st.predictive_interval(out, prob=1.5)
     with pytest.raises(ValueError, match="predictions"):

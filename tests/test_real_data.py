@@ -56,8 +56,8 @@ def test_logistic_regression_on_breast_cancer_matches_sklearn():
     X, y = load_breast_cancer(return_X_y=True)
     Xtr, Xte, ytr, yte = standardised_split(X, y, test_size=0.3)
     reference = LogisticRegression(max_iter=5000).fit(Xtr, ytr).score(Xte, yte)  # sklearn LogisticRegression
-    full = st.sample(logistic_target(Xtr, ytr), particles=100, steps=300, seed=0, progress=False)
-    mini = st.sample(logistic_target(Xtr, ytr, batch_size=64), particles=100, steps=300, seed=0, progress=False)
+    full = st.svgd(logistic_target(Xtr, ytr), particles=100, steps=300, seed=0, progress=False)
+    mini = st.svgd(logistic_target(Xtr, ytr, batch_size=64), particles=100, steps=300, seed=0, progress=False)
     acc_full, acc_mini = posterior_accuracy(full, Xte, yte), posterior_accuracy(mini, Xte, yte)
     print(f"accuracy: sklearn {reference:.4f}, SVGD full {acc_full:.4f}, SVGD minibatch 64 {acc_mini:.4f}")
     assert abs(acc_full - reference) <= 0.02
@@ -93,7 +93,7 @@ def test_bayesian_network_on_diabetes_matches_ridge_and_covers():
         net, prior=prior, likelihood=gaussian, extra_priors={"noise": HalfNormal(1.0)},
         data=(torch.tensor(Xtr), torch.tensor((ytr - y_mean) / y_sd)),
     )
-    run = st.sample(target, particles=30, steps=300, seed=0, progress=False)
+    run = st.svgd(target, particles=30, steps=300, seed=0, progress=False)
     mean_net = run.predict(torch.tensor(Xte))[..., 0] * y_sd + y_mean  # (1, 30, n_test)
     rmse = float(np.sqrt(np.mean((mean_net.mean((0, 1)).numpy() - yte) ** 2)))
     # posterior predictive: 40 noise draws per particle around each network's output

@@ -1,6 +1,6 @@
 """Default SVGD against the posteriordb reference posteriors, through the named-parameter interface.
 
-Floor (issue "Core engine"): with ``st.sample(target, particles=200, seed=0)`` and otherwise
+Floor (issue "Core engine"): with ``st.svgd(target, particles=200, seed=0)`` and otherwise
 defaults, every parameter's mean within 0.1 reference sd and sd within 10% of the reference.
 Source: posteriordb reference posteriors (posteriordb, BSD-3), read from ../shared/posteriors/.
 Four run in the default suite (including eight_schools_noncentered and diamonds); the other four are
@@ -30,12 +30,12 @@ SLOW = [
 
 def named_target(name: str) -> st.Target:
     m = model(name)
-    return st.Target(m.log_joint, params={k: st.Param(tuple(shape), c) for k, (shape, c) in m.params.items()})
+    return st.Target(m.log_joint, latents={k: st.Latent(tuple(shape), c) for k, (shape, c) in m.params.items()})
 
 
 def _check(name: str):
     require_posteriors()
-    run = st.sample(named_target(name), particles=200, seed=0)
+    run = st.svgd(named_target(name), particles=200, seed=0)
     draws = {k: v[0].numpy() for k, v in run.draws.items()}
     table = compare_moments(model(name).derived(draws), name)
     for param, row in table.items():

@@ -5,7 +5,7 @@ import numpy as np
 from torch.distributions import constraints
 
 import stein_torch as st
-from stein_torch.sample import default_kernel
+from stein_torch.samplers.svgd import default_kernel
 
 
 def _run(tmp_path=None):
@@ -14,9 +14,9 @@ def _run(tmp_path=None):
 
     target = st.Target(
         log_joint,
-        params={"mu": st.Param(), "tau": st.Param(constraint=constraints.positive), "theta": st.Param((3,))},
+        latents={"mu": st.Latent(), "tau": st.Latent(support=constraints.positive), "theta": st.Latent((3,))},
     )
-    return st.sample(target, particles=40, steps=30, ensembles=2, seed=0)
+    return st.svgd(target, particles=40, steps=30, ensembles=2, seed=0)
 
 
 def test_inference_data_layout_and_netcdf_round_trip(tmp_path):
@@ -49,5 +49,5 @@ def test_summary_uses_arviz():
 def test_trace_has_one_row_per_step():
     run = _run()
     for key in ("lp", "step_size", "phi_rms", "faults", "grad_evals"):
-        assert len(run.trace[key]) == 30, key
-    assert np.all(np.diff(run.trace["grad_evals"]) > 0)
+        assert len(run.history[key]) == 30, key
+    assert np.all(np.diff(run.history["grad_evals"]) > 0)

@@ -34,7 +34,7 @@ def target():
 def crafted(tmp_path):
     marker = tmp_path / "marker"
     good = tmp_path / "good.pt"
-    st.sample(target(), 6, 2, seed=0, checkpoint=good)
+    st.svgd(target(), 6, 2, seed=0, checkpoint=good)
     state = torch.load(good, weights_only=True)
     state["components"]["kernel"] = Payload(marker)  # looks like a checkpoint, with a payload inside
     path = tmp_path / "crafted.pt"
@@ -45,7 +45,7 @@ def crafted(tmp_path):
 def test_resume_refuses_a_crafted_checkpoint_without_running_it(crafted):
     path, marker = crafted
     with pytest.raises(ValueError, match=r"resume: refusing to load .*could run code"):
-        st.sample(target(), 6, 4, seed=0, resume=path)
+        st.svgd(target(), 6, 4, seed=0, resume=path)
     with pytest.raises(ValueError, match=r"path: refusing to load"):
         st.load(path, target())
     with pytest.raises(ValueError, match=r"resume: refusing to load"):
@@ -62,7 +62,7 @@ def test_a_plain_pickle_file_is_refused_too(tmp_path):
     with open(path, "wb") as f:
         pickle.dump({"format": "stein_torch.checkpoint", "x": Payload(marker)}, f)
     with pytest.raises(ValueError, match=r"resume: (refusing to load|.* is not a readable stein_torch file)"):
-        st.sample(target(), 6, 4, seed=0, resume=path)
+        st.svgd(target(), 6, 4, seed=0, resume=path)
     assert not marker.exists()
     with open(path, "rb") as f:  # control: plain unpickling runs it
         pickle.load(f)
@@ -74,7 +74,7 @@ def test_a_plain_pickle_file_is_refused_too(tmp_path):
 def test_junk_and_truncated_files_give_a_clear_error(tmp_path, junk, cut):
     good = tmp_path / "good.pt"
     if not good.exists():
-        st.sample(target(), 6, 2, seed=0, checkpoint=good)
+        st.svgd(target(), 6, 2, seed=0, checkpoint=good)
     data = good.read_bytes()
     for name, content in (("junk.pt", junk), ("cut.pt", data[: int(cut * len(data))])):
         path = tmp_path / name
@@ -92,4 +92,4 @@ def test_files_of_the_wrong_kind_are_named(tmp_path):
     with pytest.raises(ValueError, match=r"format version 99"):
         st_io.load_checkpoint(path)
     with pytest.raises(FileNotFoundError, match="resume: no file"):
-        st.sample(target(), 6, 4, resume=tmp_path / "missing.pt")
+        st.svgd(target(), 6, 4, resume=tmp_path / "missing.pt")

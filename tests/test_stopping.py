@@ -15,7 +15,7 @@ import pytest
 import torch
 
 import stein_torch as st
-from stein_torch.stopping import StopRule, as_stop_rule
+from stein_torch.samplers.stopping import StopRule, as_stop_rule
 
 
 def feed(rule, values, first_check=1):
@@ -104,7 +104,7 @@ def gaussian_target(dim=3):
 
 def test_default_rule_stops_early_and_keeps_the_answer():
     target, mean, cov = gaussian_target()
-    run = st.sample(target, particles=40, steps=3000, seed=0)
+    run = st.svgd(target, particles=40, steps=3000, seed=0)
     assert run.stop_reason == "ksd_plateau"
     assert 500 <= run.settings["steps"] < 3000  # min_steps of the default rule
     x = run.draws["x"][0]
@@ -116,9 +116,9 @@ def test_default_rule_stops_early_and_keeps_the_answer():
 
 def test_ksd_trace_and_final_values():
     target = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=2)  # N(0, I): score -x (closed form)
-    run = st.sample(target, particles=40, steps=95, ensembles=2, seed=1, stop=False, precondition=None)
+    run = st.svgd(target, particles=40, steps=95, ensembles=2, seed=1, stop=False, precondition=None)
     assert run.stop_reason == "steps" and run.settings["steps"] == 95
-    trace = run.trace["ksd"]
+    trace = run.history["ksd"]
     assert trace.shape == (95, 2)
     checked = np.isfinite(trace).all(1)
     assert checked.nonzero()[0].tolist() == list(range(9, 95, 10))  # after steps 10, 20, ..., 90
@@ -136,7 +136,7 @@ def test_ksd_trace_and_final_values():
 def test_tolerance_rule_records_its_reason():
     target = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=2)
     rule = StopRule(every=5, tol=10.0, min_steps=20)  # any set of 50 points of N(0, I) has KSD < 10
-    run = st.sample(target, particles=50, steps=500, seed=0, stop=rule)
+    run = st.svgd(target, particles=50, steps=500, seed=0, stop=rule)
     assert run.stop_reason == "ksd_tolerance" and run.settings["steps"] == 20
     assert run.to_inference_data().attrs["stop_reason"] == "ksd_tolerance"
 
@@ -144,7 +144,7 @@ def test_tolerance_rule_records_its_reason():
 def test_stop_argument_is_checked():
     target = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=2)
     with pytest.raises(TypeError, match="stop must be"):
-        st.sample(target, particles=10, steps=5, stop="auto")
+        st.svgd(target, particles=10, steps=5, stop="auto")
 
 
 def test_ksd_is_scale_free_in_whitened_coordinates():
@@ -154,7 +154,7 @@ def test_ksd_is_scale_free_in_whitened_coordinates():
     plain = st.Target(lambda x: -0.5 * (x**2).sum(-1), dim=2)
     scale = torch.tensor([30.0, 0.05], dtype=torch.float64)
     scaled = st.Target(lambda x: -0.5 * ((x / scale) ** 2).sum(-1), dim=2)
-    a = st.sample(plain, particles=30, steps=30, seed=3, stop=False).settings["ksd"]
-    b = st.sample(scaled, particles=30, steps=30, seed=3, stop=False).settings["ksd"]
+    a = st.svgd(plain, particles=30, steps=30, seed=3, stop=False).settings["ksd"]
+    b = st.svgd(scaled, particles=30, steps=30, seed=3, stop=False).settings["ksd"]
     np.testing.assert_allclose(a, b, rtol=1e-3)
     assert math.isfinite(float(a[0]))

@@ -15,23 +15,23 @@ torch.set_default_dtype(torch.float64)
 
 def test_constrain_matches_torch_distributions_transforms():
     # Transforms and log-Jacobians are those of torch.distributions.biject_to.
-    params = {
-        "mu": st.Param(),
-        "tau": st.Param(constraint=constraints.positive),
-        "p": st.Param((3,), constraints.unit_interval),
-        "w": st.Param((4,), constraints.simplex),
+    latents = {
+        "mu": st.Latent(),
+        "tau": st.Latent(support=constraints.positive),
+        "p": st.Latent((3,), constraints.unit_interval),
+        "w": st.Latent((4,), constraints.simplex),
     }
-    t = st.Target(lambda p: p["mu"] * 0, params=params)
+    t = st.Target(lambda p: p["mu"] * 0, latents=latents)
     assert t.dim == 1 + 1 + 3 + 3  # the simplex has one free coordinate less
     z = torch.randn(5, t.dim, generator=torch.Generator().manual_seed(0))
     values, log_jac = t.constrain(z)
     expected = 0.0
     for name, free in (("mu", z[:, 0]), ("tau", z[:, 1]), ("p", z[:, 2:5]), ("w", z[:, 5:8])):
-        transform = biject_to(params[name].constraint)
+        transform = biject_to(latents[name].support)
         torch.testing.assert_close(values[name], transform(free))
         ladj = transform.log_abs_det_jacobian(free, transform(free))
         expected = expected + (ladj.sum(-1) if ladj.dim() > 1 else ladj)
-        assert bool(params[name].constraint.check(values[name]).all())
+        assert bool(latents[name].support.check(values[name]).all())
     torch.testing.assert_close(log_jac, expected)
     torch.testing.assert_close(t.unconstrain(values), z)
 
@@ -39,7 +39,7 @@ def test_constrain_matches_torch_distributions_transforms():
 def test_log_prob_adds_log_jacobian_and_is_batched():
     # On the unconstrained scale the density of log(tau) for tau ~ Gamma(3, 2) is Gamma.log_prob(e^z) + z
     # (change of variables; torch.distributions.Gamma).
-    t = st.Target(lambda p: Gamma(3.0, 2.0).log_prob(p["tau"]), params={"tau": st.Param(constraint=constraints.positive)})
+    t = st.Target(lambda p: Gamma(3.0, 2.0).log_prob(p["tau"]), latents={"tau": st.Latent(support=constraints.positive)})
     z = torch.randn(2, 3, 1, generator=torch.Generator().manual_seed(1))
     lp, score = t.log_prob_and_score(z)
     assert lp.shape == (2, 3) and score.shape == (2, 3, 1)
@@ -118,10 +118,10 @@ def test_non_differentiable_log_density_is_named():
         (lambda: st.Target(lambda x: x.sum(-1), dim=0), "dim"),
         (lambda: st.Target(lambda x: x.sum(-1), dim=2.5), "dim"),
         (lambda: st.Target("not callable", dim=2), "callable"),
-        (lambda: st.Target(lambda p: p, params={"mu": (3,)}), "Param"),
-        (lambda: st.Target(lambda p: p, params={"a b": st.Param()}), "identifier"),
-        (lambda: st.Param((0,)), "shape"),
-        (lambda: st.Param(constraint="positive"), "constraint"),
+        (lambda: st.Target(lambda p: p, latents={"mu": (3,)}), "Latent"),
+        (lambda: st.Target(lambda p: p, latents={"a b": st.Latent()}), "identifier"),
+        (lambda: st.Latent((0,)), "shape"),
+        (lambda: st.Latent(support="positive"), "support"),
     ],
 )
 def test_bad_specs_are_named(make, match):
@@ -130,7 +130,7 @@ def test_bad_specs_are_named(make, match):
 
 
 def test_unknown_name_and_outside_support_in_values_are_named():
-    t = st.Target(lambda p: -p["tau"], params={"tau": st.Param(constraint=constraints.positive)})
+    t = st.Target(lambda p: -p["tau"], latents={"tau": st.Latent(support=constraints.positive)})
     with pytest.raises(ValueError, match="unknown"):
         t.unconstrain({"tau": torch.ones(2), "sigma": torch.ones(2)})
     with pytest.raises(ValueError, match="outside the support"):
@@ -138,22 +138,22 @@ def test_unknown_name_and_outside_support_in_values_are_named():
 
 
 def test_init_outside_support_is_refused_by_sample():
-    t = st.Target(lambda p: -p["tau"], params={"tau": st.Param(constraint=constraints.positive)})
+    t = st.Target(lambda p: -p["tau"], latents={"tau": st.Latent(support=constraints.positive)})
     with pytest.raises(ValueError, match="init"):
-        st.sample(t, particles=4, steps=1, init={"tau": torch.tensor([1.0, 2.0, -1.0, 3.0])}, precondition=None)
+        st.svgd(t, particles=4, steps=1, init={"tau": torch.tensor([1.0, 2.0, -1.0, 3.0])}, precondition=None)
 
 
 @pytest.mark.parametrize("particles", [0, -3, 2.5, None, True])
 def test_non_positive_or_non_integer_particle_count_is_named(particles):
     t = st.Target(lambda x: -(x**2).sum(-1), dim=2)
     with pytest.raises((TypeError, ValueError), match="particles"):
-        st.sample(t, particles=particles, steps=1)
+        st.svgd(t, particles=particles, steps=1)
 
 
 def test_prior_draws_start_the_particles_inside_the_support():
     priors = {"rate": Gamma(2.0, 1.0), "loc": Normal(torch.zeros(2), 1.0)}
     t = st.Target.from_priors(priors, log_likelihood=lambda p: -((p["loc"] - 1) ** 2).sum(-1))
-    run = st.sample(t, particles=30, steps=3, init="prior", seed=1, precondition=None)
+    run = st.svgd(t, particles=30, steps=3, init="prior", seed=1, precondition=None)
     assert run.draws["rate"].shape == (1, 30) and run.draws["loc"].shape == (1, 30, 2)
     assert bool((run.draws["rate"] > 0).all())
     assert np.isfinite(run.lp.numpy()).all()

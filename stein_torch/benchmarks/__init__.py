@@ -5,6 +5,8 @@ ratios measured in one run (against a bare matmul, against a naive loop), so the
 shared, noisy machines.
 """
 
+__all__ = ["SUITES"]
+
 SUITES = {
     "core": "stein_torch.benchmarks.core",          # SVGD direction vs matmuls, memory, vs per-particle loop
     "accuracy": "stein_torch.benchmarks.accuracy",  # default SVGD and MALA on the reference posteriors

@@ -2,22 +2,22 @@
 
     stein-torch bench accuracy [--names NAME ...] [--posteriors DIR] [--seed 0] [--threads N]
 
-For each posterior it runs ``st.sample(target, particles=200, seed=0)`` (default kernel, stepper and
+For each posterior it runs ``st.svgd(target, particles=200, seed=0)`` (default kernel, stepper and
 stop rule) and ``st.langevin(target, chains=4, draws=1000, warmup=1000, seed=0)`` through
 :func:`stein_torch.compare` and prints, per posterior and method: mean_error (max over parameters of
 |mean - ref mean| / ref sd), the range of sd / ref sd, w1 (mean 1-D Wasserstein distance / ref sd),
 the KSD (whitened coordinates, see :mod:`stein_torch.compare`), score evaluations and seconds, and the
-score evaluations and seconds after which the output met the floor (mean_error <= 0.1, sd ratios in
-[0.9, 1.1]) and held it. The exit status is 0 when SVGD meets the floor on every posterior and MALA
+score evaluations and seconds after which the output met the tolerance (mean_error <= 0.1, sd ratios in
+[0.9, 1.1]) and held it. The exit status is 0 when SVGD meets the tolerance on every posterior and MALA
 on at least six, else 1.
 
-Two more lines per posterior put the floor in proportion:
+Two more lines per posterior put the tolerance in proportion:
 
 - ``exact``: the share of random subsets of 200 reference draws (exact, independent draws from the
-  posterior) whose moments meet the same floor. The floor asks for the sd within 10% from 200
+  posterior) whose moments meet the same tolerance. The tolerance asks for the sd within 10% from 200
   points; for heavy-tailed or many-parameter posteriors independent draws rarely manage that, and
   SVGD meets it only because its particles are spread more evenly than random draws.
-- ``seeds`` (with ``--seeds K``): SVGD at seeds 0..K-1, how many meet the floor.
+- ``seeds`` (with ``--seeds K``): SVGD at seeds 0..K-1, how many meet the tolerance.
 
 The torch models of the posteriors live in ``tests/posteriordb.py`` of a source checkout (beside the
 package); the data and reference draws in ``../shared/posteriors`` beside the checkout, or in the
@@ -33,7 +33,9 @@ import pathlib
 import sys
 
 import stein_torch as st
-from stein_torch.compare import FLOOR
+from stein_torch.race import TOLERANCE
+
+__all__ = ["main"]
 
 MODELS_FILE = pathlib.Path(__file__).resolve().parents[2] / "tests" / "posteriordb.py"
 MALA_NEEDED = 6
@@ -63,21 +65,21 @@ def load_models(posteriors: str | None):
 
 
 def target_of(model) -> st.Target:
-    return st.Target(model.log_joint, params={k: st.Param(tuple(s), c) for k, (s, c) in model.params.items()})
+    return st.Target(model.log_joint, latents={k: st.Latent(tuple(s), c) for k, (s, c) in model.params.items()})
 
 
 def run_one(pdb, name: str, seed: int) -> list[dict]:
     model = pdb.model(name)
     methods = {"svgd": {"method": "svgd", "particles": 200},
                "mala": {"method": "mala", "chains": 4, "draws": 1000, "warmup": 1000}}
-    return st.compare(target_of(model), pdb.load_reference(name), methods=methods, derived=model.derived, seed=seed)
+    return st.race(target_of(model), pdb.load_reference(name), methods=methods, derived=model.derived, seed=seed)
 
 
 EXACT_SUBSETS = 400  # random 200-draw subsets of the reference behind the "exact" line
 
 
-def exact_floor_share(pdb, name: str, size: int = 200, subsets: int = EXACT_SUBSETS) -> float:
-    """Share of random ``size``-draw subsets of the reference draws that meet the floor."""
+def exact_tolerance_share(pdb, name: str, size: int = 200, subsets: int = EXACT_SUBSETS) -> float:
+    """Share of random ``size``-draw subsets of the reference draws that meet the tolerance."""
     import numpy as np
 
     reference = pdb.load_reference(name)
@@ -86,25 +88,25 @@ def exact_floor_share(pdb, name: str, size: int = 200, subsets: int = EXACT_SUBS
     met = 0
     for _ in range(subsets):
         idx = rng.choice(n, size, replace=False)
-        met += _meets_floor(pdb.compare_moments({k: v[idx] for k, v in reference.items()}, name))
+        met += _within_tolerance(pdb.compare_moments({k: v[idx] for k, v in reference.items()}, name))
     return met / subsets
 
 
-def _meets_floor(moments: dict) -> bool:
-    return (max(m["mean_error"] for m in moments.values()) <= FLOOR["mean_error"]
-            and min(m["sd_ratio_min"] for m in moments.values()) >= FLOOR["sd_ratio_min"]
-            and max(m["sd_ratio_max"] for m in moments.values()) <= FLOOR["sd_ratio_max"])
+def _within_tolerance(moments: dict) -> bool:
+    return (max(m["mean_error"] for m in moments.values()) <= TOLERANCE["mean_error"]
+            and min(m["sd_ratio_min"] for m in moments.values()) >= TOLERANCE["sd_ratio_min"]
+            and max(m["sd_ratio_max"] for m in moments.values()) <= TOLERANCE["sd_ratio_max"])
 
 
-def seeds_meeting_floor(pdb, name: str, seeds: int) -> int:
-    """How many of SVGD's default runs at seeds 0..seeds-1 meet the floor."""
+def seeds_within_tolerance(pdb, name: str, seeds: int) -> int:
+    """How many of SVGD's default runs at seeds 0..seeds-1 meet the tolerance."""
     model = pdb.model(name)
     target = target_of(model)
     met = 0
     for seed in range(seeds):
-        run = st.sample(target, particles=200, seed=seed)
+        run = st.svgd(target, particles=200, seed=seed)
         draws = model.derived({k: v.reshape(-1, *v.shape[2:]).numpy() for k, v in run.draws.items()})
-        met += _meets_floor(pdb.compare_moments(draws, name))
+        met += _within_tolerance(pdb.compare_moments(draws, name))
     return met
 
 
@@ -118,7 +120,7 @@ def main(args: list[str] | None = None) -> int:
     parser.add_argument("--posteriors", default=None, help="folder of the posteriordb reference posteriors")
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--seeds", type=int, default=0,
-                        help="also run default SVGD at seeds 0..K-1 and count those meeting the floor")
+                        help="also run default SVGD at seeds 0..K-1 and count those meeting the tolerance")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch intra-op threads (1 is fastest on a machine shared with other jobs)")
     opts = parser.parse_args(args)
@@ -135,26 +137,26 @@ def main(args: list[str] | None = None) -> int:
         parser.error(f"--names: unknown posteriors {unknown}; choose from {pdb.NAMES}")
     header = (f"{'posterior':<38} {'method':<6} {'mean_err':>8} {'sd_min':>6} {'sd_max':>6} {'w1':>6} {'ksd':>7} "
               f"{'evals':>8} {'sec':>7} {'evals_ok':>8} {'sec_ok':>7} stop")
-    print(f"accuracy floor: mean_error <= {FLOOR['mean_error']}, sd ratio in [{FLOOR['sd_ratio_min']}, "
-          f"{FLOOR['sd_ratio_max']}]; *_ok: first point from which the floor held to the end")
+    print(f"accuracy tolerance: mean_error <= {TOLERANCE['mean_error']}, sd ratio in [{TOLERANCE['sd_ratio_min']}, "
+          f"{TOLERANCE['sd_ratio_max']}]; *_ok: first point from which the tolerance held to the end")
     print(header)
     print("-" * len(header))
     passed = {"svgd": 0, "mala": 0}
     for name in names:
         for row in run_one(pdb, name, opts.seed):
-            ok = row["evals_to_floor"] is not None  # the final output is the last checkpoint
+            ok = row["evals_to_tolerance"] is not None  # the final output is the last checkpoint
             passed[row["method"]] += ok
             print(f"{name[:38]:<38} {row['method']:<6} {row['mean_error']:8.3f} {row['sd_ratio_min']:6.3f} "
                   f"{row['sd_ratio_max']:6.3f} {row['w1']:6.3f} {row['ksd']:7.4f} {row['grad_evals']:8d} "
-                  f"{row['seconds']:7.1f} {_fmt(row['evals_to_floor'], '8d'):>8} "
-                  f"{_fmt(row['seconds_to_floor'], '7.1f'):>7} {row['stop_reason']}{'' if ok else '  (floor missed)'}",
+                  f"{row['seconds']:7.1f} {_fmt(row['evals_to_tolerance'], '8d'):>8} "
+                  f"{_fmt(row['seconds_to_tolerance'], '7.1f'):>7} {row['stop_reason']}{'' if ok else '  (tolerance missed)'}",
                   flush=True)
-        print(f"{'':<38} exact  200 reference draws meet the floor in {exact_floor_share(pdb, name):.0%} of "
+        print(f"{'':<38} exact  200 reference draws meet the tolerance in {exact_tolerance_share(pdb, name):.0%} of "
               f"{EXACT_SUBSETS} random subsets", flush=True)
         if opts.seeds:
-            print(f"{'':<38} seeds  svgd meets the floor at {seeds_meeting_floor(pdb, name, opts.seeds)} of "
+            print(f"{'':<38} seeds  svgd meets the tolerance at {seeds_within_tolerance(pdb, name, opts.seeds)} of "
                   f"seeds 0..{opts.seeds - 1}", flush=True)
-    print(f"floor met: svgd {passed['svgd']}/{len(names)}, mala {passed['mala']}/{len(names)}")
+    print(f"tolerance met: svgd {passed['svgd']}/{len(names)}, mala {passed['mala']}/{len(names)}")
     good = passed["svgd"] == len(names) and passed["mala"] >= min(MALA_NEEDED, len(names))
     return 0 if good else 1
 

@@ -44,7 +44,7 @@ __all__ = ["main"]
 
 FULL = {"directions": [(4096, 64), (1024, 16)], "memory": (50_000, 10), "loop": (256, 20), "repeats": 15}
 QUICK = {"directions": [(256, 8), (64, 4)], "memory": (2_000, 10), "loop": (32, 4), "repeats": 3}
-FLOORS = {"direction": 3.0, "memory_gb": 3.0, "loop": 20.0}
+BOUNDS = {"direction": 3.0, "memory_gb": 3.0, "loop": 20.0}
 
 
 def _interleaved_medians(
@@ -206,7 +206,7 @@ def loop_speedup(n: int, d: int, repeats: int) -> dict:
 
 # ---------------------------------------------------------------------------------------------- main
 def main(args: list[str]) -> int:
-    """Print the core table; return 1 if a figure misses its floor."""
+    """Print the core table; return 1 if a figure misses its bound."""
     parser = argparse.ArgumentParser(prog="stein-torch bench core")
     parser.add_argument("--quick", action="store_true", help="small sizes (for tests; figures not meaningful)")
     parser.add_argument("--memory-child", nargs=2, type=int, metavar=("N", "D"), help=argparse.SUPPRESS)
@@ -227,35 +227,35 @@ def main(args: list[str]) -> int:
     )
     if load > cores:
         print("note: the machine is busy; wall-clock ratios are inflated by waiting, CPU-time ratios are steadier")
-    print(f"{'figure':<52} {'wall':>8} {'cpu':>8} {'floor':>7}  status")
+    print(f"{'figure':<52} {'wall':>8} {'cpu':>8} {'bound':>7}  status")
     failures = 0
 
-    def row(label, wall, cpu, floor, unit="x", lower_is_better=True):
+    def row(label, wall, cpu, bound, unit="x", lower_is_better=True):
         nonlocal failures
-        ok = wall <= floor if lower_is_better else wall >= floor
+        ok = wall <= bound if lower_is_better else wall >= bound
         failures += 0 if ok or opts.quick else 1
         cpu_text = f"{cpu:>7.2f}{unit}" if cpu == cpu else f"{'-':>8}"
-        print(f"{label:<52} {wall:>7.2f}{unit} {cpu_text} {floor:>6.1f}{unit}  {'ok' if ok else 'MISSED'}", flush=True)
+        print(f"{label:<52} {wall:>7.2f}{unit} {cpu_text} {bound:>6.1f}{unit}  {'ok' if ok else 'MISSED'}", flush=True)
 
     for tag, (n, d) in zip("ab", sizes["directions"]):
         r = direction_ratios(n, d, sizes["repeats"])
         names = ("RBF()+Linear()", "RBF()", "IMQ()+Linear(2) default")
         for kernel in names:
             label = f"({tag}) direction / matmuls, {kernel} N={n} d={d}"
-            row(label, r[kernel + " ratio"], r[kernel + " cpu ratio"], FLOORS["direction"])
+            row(label, r[kernel + " ratio"], r[kernel + " cpu ratio"], BOUNDS["direction"])
         seconds = ", ".join(f"{k} {r[k]:.4f}" for k in names)
         print(f"    median seconds: matmuls {r['bare']:.4f}, {seconds}")
 
     n, d = sizes["memory"]
     m = step_memory(n, d)
-    row(f"(c) peak RSS of one step N={n} d={d}, GB", m["peak_kib"] / 2**20, float("nan"), FLOORS["memory_gb"], unit="")
+    row(f"(c) peak RSS of one step N={n} d={d}, GB", m["peak_kib"] / 2**20, float("nan"), BOUNDS["memory_gb"], unit="")
     extra = (m["peak_kib"] - m["rss_before_kib"]) / 2**10 if m["hwm_reset"] and m["rss_before_kib"] else float("nan")
     how = "high-water mark reset just before the step" if m["hwm_reset"] else "process lifetime peak"
     print(f"    RSS before the step {m['rss_before_kib'] / 2**10:.0f} MiB, the step adds {extra:.0f} MiB ({how})")
 
     n, d = sizes["loop"]
     s = loop_speedup(n, d, sizes["repeats"])
-    row(f"(d) naive loop / sample step, N={n} d={d}", s["speedup"], s["cpu speedup"], FLOORS["loop"], lower_is_better=False)
+    row(f"(d) naive loop / sample step, N={n} d={d}", s["speedup"], s["cpu speedup"], BOUNDS["loop"], lower_is_better=False)
     print(
         f"    median seconds per step: stein_torch {s['step']:.4f}, naive loop {s['naive']:.4f}; "
         f"naive direction matches the engine to {s['agreement']:.1e} (relative)"

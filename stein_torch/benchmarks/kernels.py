@@ -123,10 +123,10 @@ def run_study(*, steps=200, checkpoints=10, particles=100, reference_size=None, 
         4e-4, so W1 to the exact law is resolved to ~1e-4), in 2-D an exact i.i.d. sample
         (default 4000; its own W1 to the law sets the floor printed as "reference floor").
     """
-    from ..kernels import median_bandwidth
-    from ..sample import Sampler
-    from ..steppers import Adaptive
-    from ..target import Target
+    from ..kernels.bandwidth import median_bandwidth
+    from ..model import Target
+    from ..samplers import Sampler
+    from ..samplers.steppers import Adaptive
 
     reference_size = reference_size or {"mixture1d": 40_001, "banana2d": 4_000}
     factories = _kernels()

@@ -13,11 +13,12 @@ from dataclasses import dataclass
 
 import torch
 
-from .target import Target
+from ..model import Target
 
-__all__ = ["Affine", "find_mode", "hessian", "laplace_affine", "laplace_whitening", "covariance_affine", "LAPLACE_MAX_DIM"]
+__all__ = ["Affine", "laplace_whitening", "covariance_affine", "rewhiten_due", "LAPLACE_MAX_DIM"]
 
 LAPLACE_MAX_DIM = 1000  # dense Hessian whitening up to this many coordinates
+REWHITEN_FIRST = 25  # SVGD re-whitens by the particles' covariance at steps 25, 50, 100, 200, ...
 
 
 @dataclass
@@ -225,7 +226,9 @@ def covariance_affine(u: torch.Tensor, affine: Affine) -> Affine:
     return Affine(center, _cholesky(cov))
 
 
-def default_start(target: Target, dtype, device=None) -> torch.Tensor:
-    """The origin of the unconstrained space (mu = 0, tau = 1, theta = 0.5, ...)."""
-    return torch.zeros(target.dim, dtype=dtype, device=device)
-
+def rewhiten_due(step: int) -> bool:
+    """Whether SVGD re-whitens after ``step`` steps: at 25, 50, 100, 200, ... (doubling gaps)."""
+    if step < REWHITEN_FIRST or step % REWHITEN_FIRST:
+        return False
+    ratio = step // REWHITEN_FIRST
+    return ratio & (ratio - 1) == 0

@@ -15,10 +15,11 @@ from __future__ import annotations
 
 import functools
 import math
-import numbers
 from typing import Callable
 
 import torch
+
+from ..checks import check_callable, check_choice, check_int, check_optional_real, check_real
 
 __all__ = ["Stepper", "GradientStep", "Optim", "Adaptive", "as_stepper", "TABLEAUX", "rk_attempt"]
 
@@ -41,6 +42,10 @@ class Stepper:
     def step_size(self) -> float:
         return float("nan")
 
+    def info(self) -> dict:
+        """Figures of the last step for the sampler's history (e.g. rejections); none by default."""
+        return {}
+
     def state_dict(self) -> dict:
         return {}
 
@@ -49,19 +54,11 @@ class Stepper:
 
 
 def _positive(value, name: str, owner: str = "Adaptive") -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{owner}: {name} must be a positive number, got {type(value).__qualname__}")
-    if not (value > 0):  # also rejects NaN
-        raise ValueError(f"{owner}: {name} == {value!r}, must be > 0")
-    return float(value)
+    return check_real(value, f"{owner}: {name}", low=0, low_open=True)
 
 
 def _check_max_move(max_move, owner: str):
-    if max_move is None:
-        return None
-    if isinstance(max_move, bool) or not isinstance(max_move, numbers.Real) or not (math.isfinite(max_move) and max_move > 0):
-        raise ValueError(f"{owner}: max_move must be a positive number or None, got {max_move!r}")
-    return float(max_move)
+    return check_optional_real(max_move, f"{owner}: max_move", low=0, low_open=True)
 
 
 def _capped(phi: torch.Tensor, lr: float, max_move: float | None) -> torch.Tensor:
@@ -119,9 +116,7 @@ class Optim(Stepper):
     """
 
     def __init__(self, optimizer: Callable, *, max_move: float | None = None):
-        if not callable(optimizer):
-            raise TypeError(f"Optim: optimizer must be callable (params -> Optimizer), got {type(optimizer).__qualname__}")
-        self.factory = optimizer
+        self.factory = check_callable(optimizer, "Optim: optimizer", "callable (params -> Optimizer)")
         self.max_move = _check_max_move(max_move, "Optim")
         self.optimizer = None
         self._param = None
@@ -272,17 +267,11 @@ class Adaptive(Stepper):
                  norm="rms", max_rejections=50):
         self.rtol = _positive(rtol, "rtol")
         self.atol = _positive(atol, "atol")
-        if method not in TABLEAUX:
-            raise ValueError(f"Adaptive: method must be one of {set(TABLEAUX)}, got {method!r}")
-        self.method = method
+        self.method = check_choice(method, "Adaptive: method", TABLEAUX)
         self.first_step = None if first_step is None else _positive(first_step, "first_step")
-        self.max_step = _positive(max_step, "max_step")
-        if norm not in ("rms", "max"):
-            raise ValueError(f"Adaptive: norm must be one of {{'rms', 'max'}}, got {norm!r}")
-        self.norm = norm
-        if isinstance(max_rejections, bool) or not isinstance(max_rejections, numbers.Integral) or max_rejections < 1:
-            raise ValueError(f"Adaptive: max_rejections must be an int >= 1, got {max_rejections!r}")
-        self.max_rejections = int(max_rejections)
+        self.max_step = math.inf if max_step == math.inf else _positive(max_step, "max_step")
+        self.norm = check_choice(norm, "Adaptive: norm", ("rms", "max"))
+        self.max_rejections = check_int(max_rejections, "Adaptive: max_rejections")
         self.order = TABLEAUX[method]["order"]
         self._reset()
 
@@ -356,6 +345,9 @@ class Adaptive(Stepper):
     @property
     def step_size(self) -> float:
         return self.h_taken
+
+    def info(self) -> dict:
+        return dict(self.last_info)
 
     def state_dict(self):
         return {"h": self.h, "time": self.time, "evaluations": self.evaluations, "rejections": self.rejections}

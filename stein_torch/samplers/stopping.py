@@ -20,11 +20,10 @@ Otherwise it runs all its steps (reason ``"steps"``).
 from __future__ import annotations
 
 import math
-import numbers
 
 import torch
 
-from .checks import check_int
+from ..checks import check_int, check_real
 
 __all__ = ["StopRule", "as_stop_rule"]
 
@@ -34,11 +33,7 @@ def _positive_int(value, name: str, minimum: int = 1) -> int:
 
 
 def _nonnegative_float(value, name: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"StopRule: {name} must be a number, got {type(value).__qualname__} ({value!r})")
-    if not (math.isfinite(value) and value >= 0):
-        raise ValueError(f"StopRule: {name} == {value!r}, must be a finite number >= 0")
-    return float(value)
+    return check_real(value, f"StopRule: {name}", low=0)
 
 
 class StopRule:

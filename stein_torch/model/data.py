@@ -19,11 +19,12 @@ group of the InferenceData (what :func:`arviz.loo` and :func:`arviz.compare` rea
 from __future__ import annotations
 
 import contextlib
-import numbers
 from typing import Callable, Mapping
 
 import numpy as np
 import torch
+
+from ..checks import check_int
 
 __all__ = ["ObservedData", "with_likelihood", "pointwise_log_likelihood", "full_log_prob", "likelihood_groups"]
 
@@ -83,11 +84,7 @@ class ObservedData:
         if self.n_obs < 1:
             raise ValueError("data: the observation axis is empty (n_obs == 0)")
         if batch_size is not None:
-            if isinstance(batch_size, bool) or not isinstance(batch_size, numbers.Integral):
-                raise TypeError(f"batch_size must be an int or None, got {type(batch_size).__qualname__}")
-            if not 1 <= batch_size <= self.n_obs:
-                raise ValueError(f"batch_size == {batch_size}, must be between 1 and n_obs = {self.n_obs}")
-            batch_size = int(batch_size)
+            batch_size = check_int(batch_size, "batch_size", minimum=1, maximum=self.n_obs)
         self.batch_size = batch_size
         observed = [observed] if isinstance(observed, str) else list(observed or [])
         unknown = [k for k in observed if k not in tensors]

@@ -1,4 +1,4 @@
-"""`st.compare`: SVGD and Langevin side by side at equal score evaluations.
+"""`st.race`: SVGD and Langevin side by side at equal score evaluations.
 
 Sources: closed-form Gaussian moments (reference draws from `scipy.stats.multivariate_normal`); the
 1-D Wasserstein distance of a translate, W1(X, X + c) = |c| (closed form), checked through
@@ -17,7 +17,7 @@ import scipy.stats
 import torch
 
 import stein_torch as st
-from stein_torch.compare import accuracy, plot_comparison
+from stein_torch.race import accuracy, plot_race
 
 MEAN = np.array([1.0, -2.0])
 COV = np.array([[1.0, 0.6], [0.6, 2.0]])
@@ -47,7 +47,7 @@ def test_accuracy_of_a_translate_is_the_shift():
 
 def test_compare_at_equal_budget_on_a_gaussian():
     budget = 8000
-    rows = st.compare(gaussian_target(), reference_draws(), budget=budget, checkpoints=4, ksd_points=400,
+    rows = st.race(gaussian_target(), reference_draws(), budget=budget, checkpoints=4, ksd_points=400,
                       methods={"svgd": {"particles": 50}, "mala": {"chains": 4}})
     assert [r["method"] for r in rows] == ["svgd", "mala"]
     for row in rows:
@@ -58,14 +58,14 @@ def test_compare_at_equal_budget_on_a_gaussian():
         evals = [p["grad_evals"] for p in row["path"]]
         assert evals == sorted(evals) and len(evals) == 4 + (row["method"] == "svgd")  # + starting particles
     svgd, mala = rows
-    # closed-form Gaussian: both meet the project's accuracy floor (0.1 sd in mean, sd within 10%)
+    # closed-form Gaussian: both meet the project's accuracy tolerance (0.1 sd in mean, sd within 10%)
     for row in rows:
         assert row["mean_error"] < 0.1 and 0.9 <= row["sd_ratio_min"] <= row["sd_ratio_max"] <= 1.1
-        assert row["evals_to_floor"] is not None and row["evals_to_floor"] <= row["grad_evals"]
+        assert row["evals_to_tolerance"] is not None and row["evals_to_tolerance"] <= row["grad_evals"]
     # the KSD of MALA is taken on 400 evenly thinned draws, SVGD's on its 50 particles
     assert svgd["points"] == 50 and mala["points"] == 400
     assert svgd["result"].settings["steps"] == budget // 50 - 1 and svgd["stop_reason"] == "steps"
-    ax = plot_comparison(rows, metric="w1")
+    ax = plot_race(rows, metric="w1")
     assert len(ax.get_lines()) == 2 and ax.get_xscale() == "log"
 
 
@@ -73,23 +73,23 @@ def test_compare_without_reference_and_with_ula_and_derived_names():
     def derived(draws):
         return {"first": draws["x"][:, 0]}
 
-    rows = st.compare(gaussian_target(), {"first": reference_draws()["x"][:, 0]}, budget=4000, checkpoints=2,
+    rows = st.race(gaussian_target(), {"first": reference_draws()["x"][:, 0]}, budget=4000, checkpoints=2,
                       methods=["ula"], derived=derived)
     assert rows[0]["method"] == "ula" and rows[0]["result"].settings["method"] == "ula"
     assert "w1" in rows[0]
-    bare = st.compare(gaussian_target(), budget=2000, checkpoints=1, methods=["mala"])
+    bare = st.race(gaussian_target(), budget=2000, checkpoints=1, methods=["mala"])
     assert "mean_error" not in bare[0] and bare[0]["ksd"] > 0
 
 
 def test_bad_input_is_named():
     t = gaussian_target()
     with pytest.raises(ValueError, match="method must be one of"):
-        st.compare(t, budget=100, methods=["hmc"])
+        st.race(t, budget=100, methods=["hmc"])
     with pytest.raises(ValueError, match="unknown options"):
-        st.compare(t, budget=100, methods={"svgd": {"chains": 2}})
+        st.race(t, budget=100, methods={"svgd": {"chains": 2}})
     with pytest.raises(ValueError, match="budget"):
-        st.compare(t, budget=0)
+        st.race(t, budget=0)
     with pytest.raises(ValueError, match="reference"):
-        st.compare(t, {"x": np.zeros(1)}, budget=100)
+        st.race(t, {"x": np.zeros(1)}, budget=100)
     with pytest.raises(ValueError, match="metric"):
-        plot_comparison([{"path": [{"grad_evals": 1, "ksd": 1.0, "points": 1}]}], metric="rmse")
+        plot_race([{"path": [{"grad_evals": 1, "ksd": 1.0, "points": 1}]}], metric="rmse")

@@ -32,9 +32,9 @@ import torch
 from torch import nn
 from torch.distributions import Distribution, biject_to, constraints
 
-from .kernels import RBF
-from .steppers import Optim
-from .target import Param
+from ..kernels import RBF
+from .defaults import SamplerDefaults
+from .latent import Latent
 
 __all__ = ["module_target", "safe_name"]
 
@@ -142,9 +142,9 @@ def module_target(
     Returns
     -------
     Target
-        Named parameters by safe name, ``module_names`` (safe -> dotted), ``predictive`` (the
-        network outputs, for :meth:`Result.predict`), and sampler hints (used when
-        :func:`stein_torch.sample` is left at its defaults):
+        Latents by safe name, ``module_names`` (safe -> dotted), ``predictive`` (the network
+        outputs, for :meth:`Result.predict`), and :class:`SamplerDefaults` (used where
+        :func:`stein_torch.svgd` is left at its defaults):
 
         - ``init="prior"``: each particle a fresh ``reset_parameters()`` initialisation of the
           module (prior draws for real parameters no layer resets); ``extra_priors`` parameters
@@ -196,7 +196,7 @@ def module_target(
     priors = {safe: _prior_for(prior, dotted, safe, shapes[safe]) for safe, dotted in names.items()}
     priors.update(extra_priors)
     shapes.update({k: torch.Size(d.batch_shape + d.event_shape) for k, d in extra_priors.items()})
-    params = {k: Param(tuple(shapes[k]), priors[k].support) for k in priors}
+    latents = {k: Latent(tuple(shapes[k]), priors[k].support) for k in priors}
 
     cast_cache: dict = {}
 
@@ -275,18 +275,18 @@ def module_target(
                     out[k] = d.sample((n,))
         return out
 
-    target = cls(
-        log_prior, params=params, initial=initial, log_likelihood=log_likelihood,
-        data={"x": data[0], "y": data[1]}, batch_size=batch_size, observed="y",
-        predictive=forward,
-    )
-    target.module_names = dict(names)
     # Networks: fresh layer initialisations as the start, no Laplace whitening (many modes), plain
     # RBF, and Adam (common practice for network weights, whose scales differ by layer).
-    target.sampler_hints = {
-        "init": "prior", "precondition": None, "kernel": RBF,
-        "stepper": lambda: Optim(functools.partial(torch.optim.Adam, lr=0.05)),
-    }
+    defaults = SamplerDefaults(
+        init="prior", precondition=None, kernel=RBF, stepper=functools.partial(torch.optim.Adam, lr=0.05),
+        reason="network posteriors: many modes, hundreds of coordinates, layer-dependent scales",
+    )
+    target = cls(
+        log_prior, latents=latents, initial=initial, log_likelihood=log_likelihood,
+        data={"x": data[0], "y": data[1]}, batch_size=batch_size, observed="y",
+        predictive=forward, defaults=defaults,
+    )
+    target.module_names = dict(names)
     return target
 
 

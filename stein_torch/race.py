@@ -14,7 +14,7 @@ Figures (every row and every checkpoint):
 - with ``reference`` draws: ``mean_error`` = max over scalar parameters of |mean - ref mean| / ref sd,
   ``sd_ratio_min``/``sd_ratio_max`` of sd / ref sd, ``w1`` = mean over scalar parameters of the 1-D
   Wasserstein distance (:func:`scipy.stats.wasserstein_distance`) / ref sd, and the score evaluations
-  and seconds at which the output first met the accuracy floor and stayed within it to the end.
+  and seconds at which the output first met the accuracy tolerance and stayed within it to the end.
 """
 
 from __future__ import annotations
@@ -25,15 +25,17 @@ from typing import Callable, Mapping, Sequence
 import numpy as np
 import torch
 
-from .langevin import langevin
-from .precondition import LAPLACE_MAX_DIM, Affine, default_start, laplace_whitening
-from .sample import DEFAULT_STEPS, Sampler
+from .checks import check_int, check_type
+from .model import Target
+from .samplers import Sampler, langevin
+from .samplers.loop import run_loop
+from .samplers.precondition import LAPLACE_MAX_DIM, Affine, laplace_whitening
+from .samplers.svgd import DEFAULT_STEPS
 from .stein import ksd as kernel_stein_discrepancy
-from .target import Target
 
-__all__ = ["compare", "plot_comparison", "accuracy", "FLOOR"]
+__all__ = ["race", "plot_race", "accuracy", "TOLERANCE"]
 
-FLOOR = {"mean_error": 0.1, "sd_ratio_min": 0.9, "sd_ratio_max": 1.1}
+TOLERANCE = {"mean_error": 0.1, "sd_ratio_min": 0.9, "sd_ratio_max": 1.1}
 SVGD_OPTIONS = {"particles", "ensembles", "kernel", "stepper", "steps", "stop", "precondition", "dtype", "init"}
 LANGEVIN_OPTIONS = {"chains", "draws", "warmup", "step_size", "precondition", "dtype", "init"}
 
@@ -70,9 +72,9 @@ def accuracy(draws: Mapping[str, np.ndarray], reference: Mapping[str, np.ndarray
             "sd_ratio_max": float(np.max(ratios)), "w1": float(np.mean(distances))}
 
 
-def _meets_floor(figures: Mapping[str, float]) -> bool:
-    return (figures["mean_error"] <= FLOOR["mean_error"] and figures["sd_ratio_min"] >= FLOOR["sd_ratio_min"]
-            and figures["sd_ratio_max"] <= FLOOR["sd_ratio_max"])
+def _within_tolerance(figures: Mapping[str, float]) -> bool:
+    return (figures["mean_error"] <= TOLERANCE["mean_error"] and figures["sd_ratio_min"] >= TOLERANCE["sd_ratio_min"]
+            and figures["sd_ratio_max"] <= TOLERANCE["sd_ratio_max"])
 
 
 def _parse_methods(methods) -> dict[str, dict]:
@@ -141,20 +143,19 @@ def _run_svgd(target, options, budget, checkpoints, meter, seed, progress):
     marks = set(np.unique(np.geomspace(1, steps, checkpoints).round().astype(int)).tolist())
     z = sampler.affine.to_z(sampler.u).reshape(-1, target.dim).detach()
     path = [{"grad_evals": sampler.grad_evals, "seconds": elapsed, **meter(z)}]  # the starting particles
-    from tqdm.auto import tqdm
+    clock = {"last": time.perf_counter()}
 
-    with tqdm(total=steps, desc="svgd", disable=not progress, leave=False) as bar:
-        for _ in range(steps):
-            start = time.perf_counter()
-            sampler.step()
-            elapsed += time.perf_counter() - start
-            bar.update(1)
-            done = sampler.stop_reason != "steps" or sampler.step_count == steps
-            if sampler.step_count in marks or done:
-                z = sampler.affine.to_z(sampler.u).reshape(-1, target.dim).detach()
-                path.append({"grad_evals": sampler.grad_evals, "seconds": elapsed, **meter(z)})
-            if sampler.stop_reason != "steps":
-                break
+    def measure(s):  # after each step: time the step, measure at the marks and at the end
+        nonlocal elapsed
+        now = time.perf_counter()
+        elapsed += now - clock["last"]
+        if s.step_count in marks or s.stop_reason != s.finished_reason or s.step_count == steps:
+            z = s.affine.to_z(s.u).reshape(-1, target.dim).detach()
+            path.append({"grad_evals": s.grad_evals, "seconds": elapsed, **meter(z)})
+        clock["last"] = time.perf_counter()  # measuring is not sampling time
+
+    clock["last"] = time.perf_counter()
+    run_loop(sampler, steps, progress=progress, hooks=[measure])
     return path, sampler.result()
 
 
@@ -170,18 +171,18 @@ def _run_langevin(target, options, budget, checkpoints, meter, seed, progress):
     run = langevin(target, chains, adjusted=(kind == "mala"), seed=seed, progress=progress, **opts)
     total = time.perf_counter() - start
     warmup, draws = run.settings["warmup"], run.settings["draws"]
-    loop = run.trace["seconds"][-1]
+    loop = run.history["seconds"][-1]
     setup = total - loop
     path = []
     marks = np.unique(np.geomspace(min(10, draws), draws, checkpoints).round().astype(int).clip(2, draws))
     for kept in marks:
         z = run.particles[:, :kept].reshape(-1, target.dim)
-        seconds = setup + float(run.trace["seconds"][warmup + kept - 1])
+        seconds = setup + float(run.history["seconds"][warmup + kept - 1])
         path.append({"grad_evals": chains * (1 + warmup + int(kept)), "seconds": seconds, **meter(z)})
     return path, run
 
 
-def compare(
+def race(
     target: Target,
     reference: Mapping[str, np.ndarray] | None = None,
     *,
@@ -210,7 +211,7 @@ def compare(
         Names among {"svgd", "mala", "ula"}, or label -> options, e.g.
         ``{"svgd": {}, "svgd-imq": {"method": "svgd", "kernel": st.kernels.IMQ()}, "mala":
         {"chains": 8}}`` (``method`` defaults to the label). Options are those of
-        :func:`stein_torch.sample` / :func:`stein_torch.langevin`. Default ("svgd", "mala").
+        :func:`stein_torch.svgd` / :func:`stein_torch.langevin`. Default ("svgd", "mala").
     checkpoints : int, default=20
         Measurements along each run, spaced geometrically (for :func:`plot_comparison`); SVGD adds
         one for its starting particles.
@@ -226,7 +227,7 @@ def compare(
     list of dict
         One row per method: ``method``, ``grad_evals``, ``seconds`` (set-up included), ``ksd``,
         ``points``, ``stop_reason``; with ``reference`` also ``mean_error``, ``sd_ratio_min``,
-        ``sd_ratio_max``, ``w1``, ``evals_to_floor`` and ``seconds_to_floor`` (None when the floor
+        ``sd_ratio_max``, ``w1``, ``evals_to_tolerance`` and ``seconds_to_tolerance`` (None when the tolerance
         mean_error <= 0.1, sd ratios in [0.9, 1.1] was not held at the end); ``path``: the
         checkpoints as a list of dicts with the same figures; ``result``: the method's Result.
 
@@ -234,19 +235,17 @@ def compare(
     -----
     Figures from one model and one seed; they are approximate and timings depend on the machine.
     """
-    if not isinstance(target, Target):
-        raise TypeError(f"compare: target must be a stein_torch.Target, got {type(target).__qualname__}")
-    if budget is not None and (isinstance(budget, bool) or not isinstance(budget, int) or budget < 1):
-        raise ValueError(f"compare: budget must be a positive int or None, got {budget!r}")
-    if isinstance(checkpoints, bool) or not isinstance(checkpoints, int) or checkpoints < 1:
-        raise ValueError(f"compare: checkpoints must be a positive int, got {checkpoints!r}")
+    check_type(target, "race: target", Target, "stein_torch.Target")
+    if budget is not None:
+        check_int(budget, "race: budget")
+    check_int(checkpoints, "race: checkpoints")
     if reference is not None:
         if not isinstance(reference, Mapping) or not reference:
-            raise TypeError(f"compare: reference must be a dict name -> array (n_draws, *shape), got {type(reference).__qualname__}")
+            raise TypeError(f"race: reference must be a dict name -> array (n_draws, *shape), got {type(reference).__qualname__}")
         reference = {k: np.asarray(v, dtype=np.float64) for k, v in reference.items()}
         for k, v in reference.items():
             if v.ndim < 1 or v.shape[0] < 2:
-                raise ValueError(f"compare: reference[{k!r}] must have shape (n_draws >= 2, *shape), got {v.shape}")
+                raise ValueError(f"race: reference[{k!r}] must have shape (n_draws >= 2, *shape), got {v.shape}")
     specs = _parse_methods(methods)
     meter = _Meter(target, reference, derived, ksd_points, _common_affine(target))
     rows = []
@@ -255,7 +254,7 @@ def compare(
         path, result = runner(target, options, budget, checkpoints, meter, seed, progress)
         row = {"method": label, **path[-1], "stop_reason": result.stop_reason}
         if reference is not None:
-            row["evals_to_floor"], row["seconds_to_floor"] = _time_to_floor(path)
+            row["evals_to_tolerance"], row["seconds_to_tolerance"] = _time_to_tolerance(path)
         row["path"], row["result"] = path, result
         rows.append(row)
     return rows
@@ -264,17 +263,17 @@ def compare(
 def _common_affine(target: Target) -> Affine:
     affine = Affine.identity(target.dim, torch.float64)
     if target.dim <= LAPLACE_MAX_DIM:
-        candidate, _ = laplace_whitening(target, default_start(target, torch.float64))
+        candidate, _ = laplace_whitening(target, torch.zeros(target.dim, dtype=torch.float64))
         if candidate is not None and torch.isfinite(candidate.matrix).all():
             affine = candidate
     return affine
 
 
-def _time_to_floor(path: list[dict]) -> tuple[int | None, float | None]:
-    """Evaluations and seconds at the first checkpoint from which every later one meets the floor."""
+def _time_to_tolerance(path: list[dict]) -> tuple[int | None, float | None]:
+    """Evaluations and seconds at the first checkpoint from which every later one meets the tolerance."""
     first = None
     for i, point in enumerate(path):
-        if not _meets_floor(point):
+        if not _within_tolerance(point):
             first = None
         elif first is None:
             first = i
@@ -283,13 +282,13 @@ def _time_to_floor(path: list[dict]) -> tuple[int | None, float | None]:
     return path[first]["grad_evals"], path[first]["seconds"]
 
 
-def plot_comparison(rows: list[dict], metric: str = "w1", ax=None):
+def plot_race(rows: list[dict], metric: str = "w1", ax=None):
     """Plot ``metric`` against score evaluations for each method of :func:`compare` (log-log).
 
     Parameters
     ----------
     rows : list of dict
-        The return value of :func:`compare`.
+        The return value of :func:`race`.
     metric : {"w1", "mean_error", "ksd", "sd_ratio_min", "sd_ratio_max"}, default="w1"
     ax : matplotlib Axes, optional
 
@@ -300,9 +299,9 @@ def plot_comparison(rows: list[dict], metric: str = "w1", ax=None):
     import matplotlib.pyplot as plt
 
     if not rows or any("path" not in r for r in rows):
-        raise ValueError("plot_comparison: rows must be the list returned by st.compare")
+        raise ValueError("plot_race: rows must be the list returned by st.race")
     if metric not in rows[0]["path"][0]:
-        raise ValueError(f"plot_comparison: metric must be one of {sorted(k for k in rows[0]['path'][0] if k != 'points')}, got {metric!r}")
+        raise ValueError(f"plot_race: metric must be one of {sorted(k for k in rows[0]['path'][0] if k != 'points')}, got {metric!r}")
     if ax is None:
         _, ax = plt.subplots(figsize=(5, 3.5))
     for row in rows:
@@ -313,7 +312,7 @@ def plot_comparison(rows: list[dict], metric: str = "w1", ax=None):
     if metric in ("w1", "mean_error", "ksd"):
         ax.set_yscale("log")
     if metric == "mean_error":
-        ax.axhline(FLOOR["mean_error"], color="grey", lw=0.8, ls="--")
+        ax.axhline(TOLERANCE["mean_error"], color="grey", lw=0.8, ls="--")
     ax.set_xlabel("score evaluations")
     ax.set_ylabel(metric)
     ax.legend()

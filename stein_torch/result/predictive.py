@@ -13,7 +13,7 @@ from typing import Callable, NamedTuple
 import numpy as np
 import torch
 
-__all__ = ["predict", "PredictiveBands", "predictive_interval", "predictions_group"]
+__all__ = ["PredictiveBands", "predictive_interval"]
 
 PREDICT_ELEMENTS = 2**22  # particles x inputs per chunk
 
@@ -36,7 +36,7 @@ def predict(result, inputs, predictive: Callable | None = None, max_elements: in
     -------
     Tensor of shape (chains, draws, n, ...)
     """
-    fn = predictive if predictive is not None else getattr(result.target, "predictive", None)
+    fn = predictive if predictive is not None else result.target.predictive
     if fn is None:
         raise ValueError(
             "predict: this target has no predictive function; build it with Target.from_module, pass "
@@ -122,7 +122,7 @@ def predictions_group(result, predictions) -> tuple[dict, dict]:
     A tensor or array (chains, draws, n, ...) becomes one variable named after the observations
     (``y`` for module targets); a dict keeps its names.
     """
-    data = getattr(result.target, "data", None)
+    data = result.target.data
     if isinstance(predictions, (torch.Tensor, np.ndarray)):
         name = data.observed[0] if data is not None and len(data.observed) == 1 else "y"
         predictions = {name: predictions}

@@ -4,7 +4,7 @@ With drive gamma in [0, 1] the update is phi(x_i) = (1/N) sum_j [gamma k_ij s_j 
 its fixed points follow the tempered target p^gamma. A small gamma lets the repulsion spread the
 particles over a wide region; raising gamma to 1 pulls them into the modes, so particles can reach
 modes a plain run never sees ("Annealed Stein Variational Gradient Descent", arXiv:2101.09815, from
-memory). Pass a schedule as ``st.sample(..., anneal=...)``; any callable ``step -> gamma`` works.
+memory). Pass a schedule as ``st.svgd(..., anneal=...)``; any callable ``step -> gamma`` works.
 
 For multimodal targets also pass ``precondition=None`` and a broad ``init``: the default start
 (L-BFGS to one mode, whitening by its curvature, particles drawn around it) puts every particle in
@@ -18,27 +18,23 @@ before relying on them.
 from __future__ import annotations
 
 import math
-import numbers
 from typing import Callable
+
+from ..checks import check_callable, check_int, check_real
 
 __all__ = ["linear", "cyclical", "hyperbolic", "as_drive"]
 
 
 def _count(value, name: str, owner: str) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{owner}: {name} must be an int, got {type(value).__qualname__}")
-    if value < 1:
-        raise ValueError(f"{owner}: {name} == {value}, must be >= 1")
-    return int(value)
+    return check_int(value, f"{owner}: {name}")
 
 
 def _fraction(value, name: str, owner: str, low_open: bool = False) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{owner}: {name} must be a number, got {type(value).__qualname__}")
-    ok = (0 < value <= 1) if low_open else (0 <= value <= 1)
-    if not ok:
-        raise ValueError(f"{owner}: {name} == {value!r}, must lie in {'(0, 1]' if low_open else '[0, 1]'}")
-    return float(value)
+    return check_real(value, f"{owner}: {name}", low=0, high=1, low_open=low_open)
+
+
+def _power(value, owner: str) -> float:
+    return check_real(value, f"{owner}: power", low=0, low_open=True)
 
 
 class linear:
@@ -83,9 +79,7 @@ class cyclical:
     def __init__(self, cycles: int, cycle_steps: int, power: float = 1.0, start: float = 0.0):
         self.cycles = _count(cycles, "cycles", "cyclical")
         self.cycle_steps = _count(cycle_steps, "cycle_steps", "cyclical")
-        if isinstance(power, bool) or not isinstance(power, numbers.Real) or not (power > 0 and math.isfinite(power)):
-            raise ValueError(f"cyclical: power must be a positive number, got {power!r}")
-        self.power = float(power)
+        self.power = _power(power, "cyclical")
         self.start = _fraction(start, "start", "cyclical")
 
     def __call__(self, step: int) -> float:
@@ -110,9 +104,7 @@ class hyperbolic:
 
     def __init__(self, ramp_steps: int, power: float = 1.0):
         self.ramp_steps = _count(ramp_steps, "ramp_steps", "hyperbolic")
-        if isinstance(power, bool) or not isinstance(power, numbers.Real) or not (power > 0 and math.isfinite(power)):
-            raise ValueError(f"hyperbolic: power must be a positive number, got {power!r}")
-        self.power = float(power)
+        self.power = _power(power, "hyperbolic")
 
     def __call__(self, step: int) -> float:
         return math.tanh((1.3 * step / self.ramp_steps) ** self.power)
@@ -125,17 +117,14 @@ def as_drive(anneal) -> Callable[[int], float]:
     """The sampler's ``drive(step)``: 1 without annealing, else the schedule with its values checked."""
     if anneal is None:
         return lambda step: 1.0
-    if not callable(anneal):
-        raise TypeError(
-            f"anneal must be None or a callable step -> drive in [0, 1] (e.g. st.schedules.linear(300)), "
-            f"got {type(anneal).__qualname__}"
-        )
+    check_callable(anneal, "anneal", "callable step -> drive in [0, 1] (e.g. st.schedules.linear(300)), or None")
 
     def drive(step: int) -> float:
         value = anneal(step)
-        if isinstance(value, bool) or not isinstance(value, numbers.Real) or not (0 <= value <= 1):
-            raise ValueError(f"anneal: the schedule must return a number in [0, 1]; at step {step} it returned {value!r}")
-        return float(value)
+        try:
+            return check_real(value, f"anneal: the schedule's value at step {step}", low=0, high=1)
+        except (TypeError, ValueError) as err:
+            raise ValueError(f"{err} (a schedule returns a number in [0, 1])") from None
 
     drive(0)  # fail at the boundary, not mid-run
     return drive

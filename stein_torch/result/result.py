@@ -1,4 +1,5 @@
-"""What a run returns: draws on the constrained scale, the trace, and the bridge to ArviZ."""
+"""What a run returns: draws on the constrained scale, the per-step history, warnings, and the
+bridge to ArviZ."""
 
 from __future__ import annotations
 
@@ -7,8 +8,6 @@ from typing import Any
 import numpy as np
 import torch
 
-from .target import Target
-
 __all__ = ["Result"]
 
 
@@ -16,7 +15,7 @@ class Result:
     """Draws of a sampler run, organised as (chain, draw).
 
     For SVGD a chain is an ensemble (an independent particle set) and a draw is a particle; for
-    Langevin samplers they are the usual chains and iterations.
+    MCMC samplers they are the usual chains and iterations.
 
     Attributes
     ----------
@@ -25,33 +24,38 @@ class Result:
         Final positions on the unconstrained scale.
     lp : Tensor of shape (chains, draws)
         Log density (unconstrained scale, log-Jacobian included) of each particle.
-    trace : dict of str to ndarray
-        Per-step figures, each of shape (steps,) or (steps, chains).
+    history : dict of str to ndarray
+        Per-step figures of the run (KSD, mean log density, step size, faults, ...), each of shape
+        (steps,) or (steps, chains).
     settings : dict
         Method, kernel, step rule and other settings (stored as InferenceData attrs).
     stop_reason : str
-        Why the run ended ("steps", "interrupted", ...).
+        Why the run ended ("steps", "draws", "interrupted", a stop rule's reason).
     sample_stats : dict of str to ndarray
         Extra per-draw statistics of shape (chains, draws) for the ``sample_stats`` group.
+    warnings : list of str
+        Why the result may be wrong; empty when nothing was seen.
     """
 
     def __init__(
         self,
-        target: Target,
+        target,
         particles: torch.Tensor,
         lp: torch.Tensor,
-        trace: dict[str, np.ndarray],
+        history: dict[str, np.ndarray],
         settings: dict[str, Any],
         stop_reason: str = "steps",
         sample_stats: dict[str, np.ndarray] | None = None,
+        warnings: list[str] | None = None,
     ):
         self.target = target
         self.particles = particles
         self.lp = lp
-        self.trace = trace
+        self.history = history
         self.settings = settings
         self.stop_reason = stop_reason
         self.sample_stats = dict(sample_stats or {})
+        self.warnings = list(warnings or [])
         self._draws = None
         self._likelihood = None
 
@@ -71,45 +75,22 @@ class Result:
     def to_inference_data(self, **groups):
         """Convert to :class:`arviz.InferenceData`.
 
-        Groups: ``posterior`` (one variable per parameter, dims chain, draw, *shape; for SVGD
+        Groups: ``posterior`` (one variable per latent, dims chain, draw, *shape; for SVGD
         chain = ensemble, draw = particle), ``sample_stats`` (``lp`` per draw and any statistics of
-        the sampler), attrs with the library name, version and settings. For targets with data:
-        ``log_likelihood`` (per-observation terms on the full data, dims chain, draw, obs: what
-        :func:`arviz.loo` and :func:`arviz.compare` read), ``observed_data`` and ``constant_data``.
-        ``predictions=`` takes :meth:`predict` outputs (chains, draws, n, ...) or a dict of them.
-        Other groups may be passed as keyword arguments of :func:`arviz.from_dict`.
+        the sampler), attrs with the library name, version, settings and warnings. For targets with
+        data: ``log_likelihood`` (per-observation terms on the full data, dims chain, draw, obs: what
+        :func:`arviz.loo` reads), ``observed_data`` and ``constant_data``. ``predictions=`` takes
+        :meth:`predict` outputs (chains, draws, n, ...) or a dict of them. Other groups may be
+        passed as keyword arguments of :func:`arviz.from_dict`.
 
         Notes
         -----
         Particles are not a Markov chain: ``ess`` computed on them is not an effective sample size
         in the MCMC sense, and only ``r_hat`` across independent ensembles is meaningful.
         """
-        import arviz as az
+        from .inference_data import to_inference_data
 
-        from . import __version__
-
-        posterior = {k: v.cpu().numpy() for k, v in self.draws.items()}
-        dims = {k: [f"{k}_dim_{i}" for i in range(v.dim() - 2)] for k, v in self.draws.items()}
-        stats = {"lp": self.lp.cpu().numpy(), **self.sample_stats}
-        attrs = {"inference_library": "stein_torch", "inference_library_version": __version__}
-        attrs.update({k: _attr_value(v) for k, v in self.settings.items()})
-        attrs["stop_reason"] = self.stop_reason
-        if getattr(self.target, "data", None) is not None:
-            from .data import likelihood_groups
-
-            if self._likelihood is None:  # pointwise terms on the full data, computed once
-                self._likelihood = likelihood_groups(self.target, self.particles)
-            for group, values in self._likelihood["groups"].items():
-                groups.setdefault(group, values)
-            dims.update({k: v for k, v in self._likelihood["dims"].items() if k not in dims})
-        if groups.get("predictions") is not None and "pred_dims" not in groups:
-            from .predict import predictions_group
-
-            groups["predictions"], groups["pred_dims"] = predictions_group(self, groups["predictions"])
-        return az.from_dict(
-            posterior=posterior, sample_stats=stats, dims=dims, attrs=attrs, posterior_attrs=attrs,
-            sample_stats_attrs=attrs, **groups,
-        )
+        return to_inference_data(self, **groups)
 
     def predict(self, inputs, *, predictive=None) -> torch.Tensor:
         """Outputs of every particle on ``inputs``, shape (chains, draws, n, ...).
@@ -118,7 +99,7 @@ class Result:
         target or here), ``fn(p, inputs) -> (*batch, n, ...)``. See
         :func:`stein_torch.predictive_interval` for the posterior predictive mean and bands.
         """
-        from .predict import predict
+        from .predictive import predict
 
         return predict(self, inputs, predictive)
 
@@ -141,21 +122,10 @@ class Result:
         name: a torch file of tensors, numbers and strings only, read back without running code by
         ``stein_torch.load(path, target)``.
         """
-        from .io import save_result
+        from .files import save_result
 
         save_result(self, path)
 
     def __repr__(self) -> str:
         chains, draws = self.particles.shape[:2]
         return f"Result(method={self.method!r}, chains={chains}, draws={draws}, stop_reason={self.stop_reason!r})"
-
-
-def _attr_value(value):
-    """NetCDF attributes must be strings or numbers."""
-    if isinstance(value, (bool, np.bool_)):
-        return int(value)
-    if isinstance(value, (int, float, str, np.integer, np.floating)):
-        return value
-    if isinstance(value, (list, tuple)) and value and all(isinstance(v, (int, float)) for v in value):
-        return np.asarray(value)  # NetCDF keeps 1-D numeric attributes (e.g. the final KSD per ensemble)
-    return str(value)

@@ -11,10 +11,10 @@ The SVGD direction with k_p. Since grad_{x_j} w_j = -(1/2) w_j s_j with s_j = gr
 
     phi_i = (w_i / N) sum_j w_j [ (drive - 1/2) k_ij s_j + grad_{x_j} k_ij ],
 
-one weighted pass of the radial engine (:func:`stein_torch.stein.radial_direction` with
-``score_coef = drive - 1/2``). The weights come from the log densities the sampler already has, in
-log space, divided by their maximum over each ensemble: w_i = exp((min_j lp_j - lp_i) / 2) <= 1. The
-common factor only rescales the step (by a constant per step), it does not change the direction.
+one weighted pass of the radial engine (registered for this kernel in
+:mod:`stein_torch.stein.directions`: ``score_coef = drive - 1/2``, weights ``w``). The weights come
+from the log densities the sampler already has, in log space, divided by their maximum over each
+ensemble: w_i = exp((min_j lp_j - lp_i) / 2) <= 1. The common factor only rescales the step (by a constant per step), it does not change the direction.
 
 When it helps, and its cost
 ---------------------------
@@ -25,14 +25,14 @@ When it helps, and its cost
   this is the regime the theory speaks to. Far from equilibrium the spread of log densities is
   large, the weights span many orders of magnitude, and the particles near the mode are nearly
   frozen (effective step exp(-Delta lp)); the flow is stiff, so pair it with
-  :class:`stein_torch.steppers.Adaptive` or start near the target (the default Laplace start).
+  :class:`stein_torch.samplers.steppers.Adaptive` or start near the target (the default Laplace start).
 """
 
 from __future__ import annotations
 
 import torch
 
-from .kernels import Kernel, RadialKernel
+from .base import Kernel, RadialKernel
 
 __all__ = ["TargetWeighted", "target_weights"]
 
@@ -90,26 +90,6 @@ class TargetWeighted(Kernel):
             raise ValueError("TargetWeighted: log_prob_x and log_prob_y (log densities of x and y) are required")
         k = self.base(x, y, bandwidth=bandwidth)
         return k * torch.exp(-0.5 * (log_prob_x[..., :, None] + log_prob_y[..., None, :]))
-
-    def stein_direction(self, x, s, *, drive=1.0, log_prob=None, generator=None, chunk_elements=None, scratch=None):
-        """SVGD direction (B, N, d) for particles x and scores s of shape (B, N, d).
-
-        Parameters
-        ----------
-        log_prob : Tensor of shape (B, N)
-            Log densities of the particles (required).
-        """
-        from .stein import CHUNK_ELEMENTS, radial_direction
-
-        if log_prob is None:
-            raise ValueError("TargetWeighted: log_prob (the particles' log densities, shape (B, N)) is required")
-        if log_prob.shape != x.shape[:-1]:
-            raise ValueError(f"TargetWeighted: log_prob must have shape {tuple(x.shape[:-1])}; got {tuple(log_prob.shape)}")
-        w = target_weights(log_prob.to(x.dtype))
-        return radial_direction(
-            x, s, self.base, score_coef=drive - 0.5, weights=w, generator=generator, scratch=scratch,
-            chunk_elements=CHUNK_ELEMENTS if chunk_elements is None else chunk_elements,
-        )
 
     def state_dict(self):
         return {"base": self.base.state_dict()}

@@ -1,0 +1,121 @@
+"""Calling a user's function on a batch of parameter values, however it was written.
+
+A log density may be written for a batch (leading dimensions, the fast way), or for one value
+(returning a scalar). :class:`Batched` decides once, on the first call, which it is: batched as is;
+vectorised by :func:`torch.func.vmap`; or, when vmap cannot trace it (``.item()``, data-dependent
+control flow), called once per value in a Python loop, with a one-time warning that says so.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from typing import Callable
+
+import torch
+
+__all__ = ["Batched"]
+
+
+class Batched:
+    """A user function ``fn(arg) -> (...)`` made batched over leading dimensions.
+
+    Parameters
+    ----------
+    fn : callable
+        ``fn(x)`` for a tensor (flat targets) or ``fn(p)`` for a dict of tensors.
+    flat : bool
+        Whether ``arg`` is a tensor (``x``, last axis the coordinates) or a dict name -> (..., *shape).
+    name : str
+        What the function is called in messages.
+
+    Attributes
+    ----------
+    mode : {None, "batched", "vmap", "loop"}
+        How the function is called; decided on the first call.
+    """
+
+    def __init__(self, fn: Callable, flat: bool, name: str = "log_prob"):
+        self.fn = fn
+        self.flat = flat
+        self.name = name
+        self.mode: str | None = None
+
+    def __call__(self, arg, batch_shape: torch.Size) -> torch.Tensor:
+        """Values of the function, shape ``batch_shape``, for ``arg`` with those leading dimensions."""
+        if len(batch_shape) == 0:  # always call the user with a batch dimension
+            arg = arg.unsqueeze(0) if self.flat else {k: v.unsqueeze(0) for k, v in arg.items()}
+            return self(arg, torch.Size([1])).squeeze(0)
+        if self.mode is None:
+            self.mode = self._probe(arg, batch_shape)
+        out = self.fn(arg) if self.mode == "batched" else self._lifted(arg, batch_shape)
+        if not isinstance(out, torch.Tensor):
+            raise TypeError(f"{self.name} must return a torch.Tensor, got {type(out).__qualname__}")
+        if out.is_complex() or not out.is_floating_point():
+            raise TypeError(f"{self.name} must return a real floating-point tensor, got dtype {out.dtype}")
+        if out.shape != batch_shape:
+            raise ValueError(
+                f"{self.name} returned shape {tuple(out.shape)} for a batch of shape {tuple(batch_shape)}; "
+                "it must return one log density per batch element"
+            )
+        return out
+
+    def _flatten(self, arg, batch_shape):
+        n = math.prod(batch_shape)
+        if self.flat:
+            return arg.reshape(n, *arg.shape[len(batch_shape) :])
+        return {k: v.reshape(n, *v.shape[len(batch_shape) :]) for k, v in arg.items()}
+
+    def _first(self, flat):
+        return flat[0] if self.flat else {k: v[0] for k, v in flat.items()}
+
+    def _lifted(self, arg, batch_shape):
+        flat = self._flatten(arg, batch_shape)
+        if self.mode == "vmap":
+            out = torch.func.vmap(self.fn)(flat)
+        else:
+            n = math.prod(batch_shape)
+            pick = (lambda i: flat[i]) if self.flat else (lambda i: {k: v[i] for k, v in flat.items()})
+            out = torch.stack([torch.as_tensor(self.fn(pick(i))) for i in range(n)])
+        return out.reshape(batch_shape)
+
+    def _probe(self, arg, batch_shape) -> str:
+        """Decide once whether the function is batched, vmappable, or needs a loop."""
+        try:
+            out = self.fn(arg)
+            batched_error = None
+        except Exception as err:  # a function written for one value may fail on a batch
+            out, batched_error = None, err
+        if out is not None and not isinstance(out, torch.Tensor):
+            raise TypeError(f"{self.name} must return a torch.Tensor, got {type(out).__qualname__}")
+        if out is not None and out.shape == batch_shape:
+            return "batched"
+        if out is not None and out.dim() != 0:
+            raise ValueError(
+                f"{self.name} returned shape {tuple(out.shape)} for a batch of shape {tuple(batch_shape)}; "
+                "it must return one log density per batch element (shape (...)), or a scalar for one value"
+            )
+        flat = self._flatten(arg, batch_shape)
+        try:
+            torch.func.vmap(self.fn)(flat)
+            return "vmap"
+        except Exception as vmap_error:  # vmap cannot trace every function (.item(), data-dependent flow)
+            try:
+                single = self.fn(self._first(flat))
+            except Exception:
+                if batched_error is not None:
+                    raise batched_error
+                raise
+            if not isinstance(single, torch.Tensor) or single.dim() != 0:
+                raise ValueError(
+                    f"{self.name} must return a tensor of shape (...) for a batch, or a scalar for one value; "
+                    f"got {type(single).__qualname__} {tuple(getattr(single, 'shape', ()))} for one value"
+                ) from None
+            warnings.warn(
+                f"{self.name} is written for one value and torch.func.vmap could not vectorise it "
+                f"({type(vmap_error).__name__}); calling it once per particle in a Python loop, which is "
+                "slow. Write it for a batch of values (leading dimensions) to make it fast.",
+                RuntimeWarning,
+                stacklevel=6,
+            )
+            return "loop"

@@ -1,0 +1,6 @@
+"""What a run returns (:class:`Result`), its InferenceData, predictions and files."""
+
+from .predictive import PredictiveBands, predictive_interval
+from .result import Result
+
+__all__ = ["Result", "PredictiveBands", "predictive_interval"]
