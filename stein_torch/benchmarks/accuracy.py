@@ -4,9 +4,9 @@
 
 For each posterior it runs ``st.svgd(target, particles=200, seed=0)`` (default kernel, stepper and
 stop rule) and ``st.langevin(target, chains=4, draws=1000, warmup=1000, seed=0)`` through
-:func:`stein_torch.compare` and prints, per posterior and method: mean_error (max over parameters of
+:func:`stein_torch.race` and prints, per posterior and method: mean_error (max over parameters of
 |mean - ref mean| / ref sd), the range of sd / ref sd, w1 (mean 1-D Wasserstein distance / ref sd),
-the KSD (whitened coordinates, see :mod:`stein_torch.compare`), score evaluations and seconds, and the
+the KSD (whitened coordinates, see :mod:`stein_torch.race`), score evaluations and seconds, and the
 score evaluations and seconds after which the output met the tolerance (mean_error <= 0.1, sd ratios in
 [0.9, 1.1]) and held it. The exit status is 0 when SVGD meets the tolerance on every posterior and MALA
 on at least six, else 1.
