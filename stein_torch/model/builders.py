@@ -33,7 +33,8 @@ def from_priors(
         (``init="prior"``).
     log_likelihood : callable, optional
         ``log_likelihood(p) -> (...)`` for a dict of constrained values with leading batch dims;
-        with ``data``, ``log_likelihood(p, data) -> (..., n_obs)`` per observation.
+        with ``data``, ``log_likelihood(p, data) -> (..., n_obs)`` per observation, or a torch
+        Distribution over ``data[observed]`` (then the target can simulate data: predictive checks).
     data, batch_size, observed
         As in :class:`stein_torch.Target`.
 

@@ -55,7 +55,10 @@ class Target:
         enables ``init="prior"``.
     log_likelihood : callable, optional
         ``log_likelihood(p, data) -> (*batch, n_obs)``: one log-likelihood term per observation
-        (``p`` as for ``log_prob``, ``data`` a dict of tensors (n_obs, ...) or a minibatch of them).
+        (``p`` as for ``log_prob``, ``data`` a dict of tensors (n_obs, ...) or a minibatch of them);
+        or a :class:`torch.distributions.Distribution` over ``data[observed]`` (batch shape
+        (*batch, n_obs), or broadcasting to it), whose ``log_prob`` gives the terms and whose
+        ``sample()`` simulates data (``posterior_predictive``, :func:`stein_torch.prior_predictive`).
         Then ``log_prob`` is the log prior and the target is ``log_prob(p) + sum of the terms``;
         the terms fill the ``log_likelihood`` group of the InferenceData (for :func:`arviz.loo`).
     data : dict of str to Tensor, optional
@@ -65,7 +68,7 @@ class Target:
         (stochastic SVGD, reshuffled each epoch, shuffles from the sampler's seed). Default: full data.
     observed : str or list of str, optional
         Keys of ``data`` that are observations (``observed_data`` group); the others are covariates
-        (``constant_data``).
+        (``constant_data``). One key when ``log_likelihood`` returns a Distribution.
     predictive : callable, optional
         ``predictive(p, inputs) -> (*batch, n, ...)``, used by :meth:`Result.predict`.
     defaults : SamplerDefaults, optional
@@ -139,6 +142,11 @@ class Target:
     @property
     def shapes(self) -> dict[str, torch.Size]:
         return {b.name: b.shape for b in self.blocks}
+
+    @property
+    def dims(self) -> dict[str, tuple]:
+        """ArviZ dimension names of every latent's axes (see :class:`Latent`)."""
+        return {b.name: b.dims for b in self.blocks}
 
     def constrain(self, z: torch.Tensor) -> tuple[dict, torch.Tensor]:
         """Map flat unconstrained ``z`` (..., dim) to constrained values and the log-Jacobian (...)."""
