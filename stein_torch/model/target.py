@@ -119,7 +119,8 @@ class Target:
             joint = with_likelihood(log_prob, log_likelihood, self.data)
         elif batch_size is not None or observed is not None:
             raise ValueError("Target: batch_size= and observed= need log_likelihood= and data=")
-        self._user = Batched(joint, self.flat, "log_prob")
+        origin = (log_likelihood, log_prob) if log_likelihood is not None else (log_prob,)
+        self._user = Batched(joint, self.flat, "log_prob", describe=self._describe_inputs, origin=origin)
 
     # ------------------------------------------------------------------ construction helpers
     @classmethod
@@ -133,6 +134,22 @@ class Target:
         """A Bayesian neural network whose particles are stacked copies of ``module``'s parameters;
         see :func:`stein_torch.model.module.module_target`."""
         return module_target(cls, module, prior=prior, likelihood=likelihood, data=data, batch_size=batch_size, **options)
+
+    def _describe_inputs(self) -> tuple[str, list[str]]:
+        """What the user's functions receive, for messages: (text, names)."""
+        if self.flat:
+            n = self.dim
+            text = f"x of shape (..., {n}) (dim={n}), so x[..., i] takes i in 0..{n - 1}"
+            names = ["x"]
+        else:
+            parts = [f"{b.name}: (...{''.join(f', {n}' for n in b.shape)})" for b in self.blocks]
+            text = "p with the latents " + ", ".join(parts) + " (... = batch)"
+            names = list(self.names)
+        if self.data is not None:
+            shapes = ", ".join(f"{k}: {tuple(v.shape)}" for k, v in self.data.tensors.items())
+            text += f"; data with the keys {shapes}"
+            names += list(self.data.tensors)
+        return text, names
 
     # ------------------------------------------------------------------ coordinates
     @property
