@@ -37,6 +37,9 @@ from .stein import ksd as kernel_stein_discrepancy
 __all__ = ["race", "plot_race", "accuracy", "reference_draws", "TOLERANCE"]
 
 TOLERANCE = {"mean_error": 0.1, "sd_ratio_min": 0.9, "sd_ratio_max": 1.1}
+METRIC_LABELS = {"w1": "W1 / reference sd (mean over parameters)", "mean_error": "largest |mean error| / reference sd",
+                 "ksd": "KSD (whitened coordinates)", "sd_ratio_min": "smallest sd / reference sd",
+                 "sd_ratio_max": "largest sd / reference sd"}
 SVGD_OPTIONS = {"particles", "ensembles", "kernel", "stepper", "steps", "stop", "precondition", "dtype", "init"}
 LANGEVIN_OPTIONS = {"chains", "draws", "warmup", "step_size", "precondition", "dtype", "init"}
 
@@ -355,7 +358,7 @@ def plot_race(rows: list[dict], metric: str = "w1", ax=None):
     if metric not in rows[0]["path"][0]:
         raise ValueError(f"plot_race: metric must be one of {sorted(k for k in rows[0]['path'][0] if k != 'points')}, got {metric!r}")
     if ax is None:
-        _, ax = plt.subplots(figsize=(5, 3.5))
+        _, ax = plt.subplots(figsize=(5.5, 3.8), layout="constrained")  # room for the axis labels
     for row in rows:
         x = [p["grad_evals"] for p in row["path"]]
         y = [p[metric] for p in row["path"]]
@@ -366,7 +369,7 @@ def plot_race(rows: list[dict], metric: str = "w1", ax=None):
     if metric == "mean_error":
         ax.axhline(TOLERANCE["mean_error"], color="grey", lw=0.8, ls="--")
     ax.set_xlabel("score evaluations")
-    ax.set_ylabel(metric)
+    ax.set_ylabel(METRIC_LABELS.get(metric, metric))
     ax.legend()
     return ax
 

@@ -82,7 +82,8 @@ class Batched:
     Attributes
     ----------
     mode : {None, "batched", "vmap", "loop"}
-        How the function is called; decided on the first call.
+        How the function is called; decided on the first call with more than one value (a batch of
+        one cannot tell a batched function from one written for a single value).
     """
 
     def __init__(self, fn: Callable, flat: bool, name: str = "log_prob", describe: Callable[[], tuple] | None = None,
@@ -93,18 +94,23 @@ class Batched:
         self.describe = describe
         self.origin = tuple(origin) or (fn,)
         self.mode: str | None = None
+        self._warned = False
 
     def __call__(self, arg, batch_shape: torch.Size) -> torch.Tensor:
         """Values of the function, shape ``batch_shape``, for ``arg`` with those leading dimensions."""
         if len(batch_shape) == 0:  # always call the user with a batch dimension
             arg = arg.unsqueeze(0) if self.flat else {k: v.unsqueeze(0) for k, v in arg.items()}
             return self(arg, torch.Size([1])).squeeze(0)
-        if self.mode is None:
+        mode, out = self.mode, None
+        if mode is None:
             try:
-                self.mode = self._probe(arg, batch_shape)
+                mode, out = self._probe(arg, batch_shape)
             except (KeyError, IndexError) as err:
                 raise self._explained(err) from err
-        out = self.fn(arg) if self.mode == "batched" else self._lifted(arg, batch_shape)
+            if math.prod(batch_shape) > 1:  # one value cannot tell a batched function from a single-value one
+                self.mode = mode
+        if out is None:
+            out = self.fn(arg) if mode == "batched" else self._lifted(arg, batch_shape, mode)
         if not isinstance(out, torch.Tensor):
             raise TypeError(f"{self.name} must return a torch.Tensor, got {type(out).__qualname__}")
         if out.is_complex() or not out.is_floating_point():
@@ -125,9 +131,9 @@ class Batched:
     def _first(self, flat):
         return flat[0] if self.flat else {k: v[0] for k, v in flat.items()}
 
-    def _lifted(self, arg, batch_shape):
+    def _lifted(self, arg, batch_shape, mode):
         flat = self._flatten(arg, batch_shape)
-        if self.mode == "vmap":
+        if mode == "vmap":
             out = torch.func.vmap(self.fn)(flat)
         else:
             n = math.prod(batch_shape)
@@ -135,8 +141,9 @@ class Batched:
             out = torch.stack([torch.as_tensor(self.fn(pick(i))) for i in range(n)])
         return out.reshape(batch_shape)
 
-    def _probe(self, arg, batch_shape) -> str:
-        """Decide once whether the function is batched, vmappable, or needs a loop."""
+    def _probe(self, arg, batch_shape) -> tuple[str, torch.Tensor | None]:
+        """Whether the function is batched, vmappable, or needs a loop; with the batched output when
+        the function is batched (so that call is not repeated)."""
         try:
             out = self.fn(arg)
             batched_error = None
@@ -145,7 +152,7 @@ class Batched:
         if out is not None and not isinstance(out, torch.Tensor):
             raise TypeError(f"{self.name} must return a torch.Tensor, got {type(out).__qualname__}")
         if out is not None and out.shape == batch_shape:
-            return "batched"
+            return "batched", out
         if out is not None and out.dim() != 0:
             raise ValueError(
                 f"{self.name} returned shape {tuple(out.shape)} for a batch of shape {tuple(batch_shape)}; "
@@ -154,7 +161,7 @@ class Batched:
         flat = self._flatten(arg, batch_shape)
         try:
             torch.func.vmap(self.fn)(flat)
-            return "vmap"
+            return "vmap", None
         except Exception as vmap_error:  # vmap cannot trace every function (.item(), data-dependent flow)
             try:
                 single = self.fn(self._first(flat))
@@ -167,6 +174,9 @@ class Batched:
                     f"{self.name} must return a tensor of shape (...) for a batch, or a scalar for one value; "
                     f"got {type(single).__qualname__} {tuple(getattr(single, 'shape', ()))} for one value"
                 ) from None
+            if self._warned:
+                return "loop", None
+            self._warned = True
             filename, line = user_location(vmap_error, self.origin)
             warnings.warn_explicit(
                 f"{self.name} is written for one value and torch.func.vmap could not vectorise it "
@@ -174,7 +184,7 @@ class Batched:
                 "loop, which is slow. Write it for a batch of values (leading dimensions) to make it fast.",
                 RuntimeWarning, filename, line, module=os.path.splitext(os.path.basename(filename))[0],
             )
-            return "loop"
+            return "loop", None
 
     def _explained(self, err: BaseException) -> BaseException:
         """``err`` (a KeyError or IndexError of the user's function) with what the function was given."""

@@ -116,6 +116,14 @@ class Result:
 
         return predict(self, inputs, predictive)
 
+    def plot_history(self, figsize=None):
+        """Per-step figures as a matplotlib Figure: for SVGD the KSD of each ensemble, the mean log
+        density, the step size and the direction size, with re-whitening steps marked and annealing
+        shaded; for Langevin the step size and acceptance rate per chain. Axes are labelled."""
+        from .plots import plot_history
+
+        return plot_history(self, figsize=figsize)
+
     def summary(self, **kwargs):
         """Posterior summary by :func:`arviz.summary` (a pandas DataFrame).
 
