@@ -124,10 +124,10 @@ class Target:
 
     # ------------------------------------------------------------------ construction helpers
     @classmethod
-    def from_priors(cls, priors, log_likelihood=None, *, data=None, batch_size=None, observed=None) -> "Target":
+    def from_priors(cls, priors, log_likelihood=None, *, data=None, batch_size=None, observed=None, dims=None) -> "Target":
         """A target from prior distributions and a log likelihood; see
         :func:`stein_torch.model.builders.from_priors`."""
-        return from_priors(cls, priors, log_likelihood, data=data, batch_size=batch_size, observed=observed)
+        return from_priors(cls, priors, log_likelihood, data=data, batch_size=batch_size, observed=observed, dims=dims)
 
     @classmethod
     def from_module(cls, module, *, prior, likelihood: Callable, data, batch_size: int | None = None, **options):
