@@ -15,6 +15,7 @@ Examples
 
 from __future__ import annotations
 
+import functools
 import math
 from typing import Mapping
 
@@ -164,6 +165,10 @@ def prior_predictive(target, draws: int = 500, seed: int = 0, *, coords=None, di
         )
     values = target.draw_initial(draws, torch.Generator().manual_seed(seed))
     values = {k: torch.as_tensor(values[k]).detach().reshape(1, draws, *target.shapes[k]) for k in target.names}
+    floating = [v.dtype for v in values.values() if v.is_floating_point()]
+    if floating:  # priors given with Python floats draw float32: simulate in the widest dtype among them
+        widest = functools.reduce(torch.promote_types, floating)
+        values = {k: v.to(widest) if v.is_floating_point() else v for k, v in values.items()}
     groups = {"prior": {k: v.cpu().numpy() for k, v in values.items()}}
     our_dims = {k: list(d) for k, d in target.dims.items()}
     if target.data is not None:
