@@ -97,3 +97,11 @@ def test_convolution_and_embedding_axes():
     assert dims["0.weight"] == ("layer0_out", "layer0_in", "layer0_kernel_0")
     assert dims["0.bias"] == ("layer0_out",)
     assert dims["1.weight"] == ("layer1_index", "layer1_feature")
+
+
+def test_from_priors_names_dims_and_refuses_unknown_names():
+    priors = {"effect": Normal(torch.zeros(4, dtype=F64), 1.0), "noise": HalfNormal(torch.tensor(1.0, dtype=F64))}
+    target = st.Target.from_priors(priors, dims={"effect": ("school",)})
+    assert target.dims == {"effect": ("school",), "noise": ()}
+    with pytest.raises(ValueError, match="not among the priors"):
+        st.Target.from_priors(priors, dims={"effects": ("school",)})

@@ -201,3 +201,17 @@ def test_a_distribution_needs_one_observed_key_and_the_right_shape():
                                                                      torch.eye(10, dtype=F64)))
     with pytest.raises(ValueError, match="batch_shape"):
         st.svgd(whole, particles=10, steps=2, seed=0, progress=False)
+
+
+def test_langevin_results_get_the_same_groups():
+    # a normal mean with known sd: posterior predictive mean = posterior mean (closed form, conjugate normal)
+    y = torch.tensor([2.1, 3.5, 1.7, 2.9, 4.2, 2.6], dtype=F64)
+    target = st.Target(lambda p: Normal(t64(1.0), 3.0).log_prob(p["mu"]), latents={"mu": st.Latent()},
+                       log_likelihood=lambda p, d: Normal(p["mu"][..., None], 2.0), data={"y": y}, observed="y")
+    run = st.langevin(target, chains=2, draws=1000, warmup=500, seed=0, progress=False)
+    simulated = run.to_inference_data().posterior_predictive["y"].values
+    assert simulated.shape == (2, 1000, 6)
+    precision = 1 / 9 + 6 / 4
+    mean, variance = (1 / 9 + float(y.sum()) / 4) / precision, 4 + 1 / precision
+    # Monte-Carlo error of 12000 correlated simulated values: allow 5 sds of 2000 independent ones
+    assert abs(simulated.mean() - mean) < 5 * np.sqrt(variance / 2000)
