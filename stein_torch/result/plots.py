@@ -48,8 +48,9 @@ def _draw(ax, values: np.ndarray, log: bool, lines_label: str) -> None:
         label = f"{lines_label} {i}" if values.shape[1] > 1 else None
         style = {"marker": "o", "markersize": 3} if finite.sum() < len(values) / 2 else {}
         ax.plot(steps[finite], values[finite, i], lw=1, label=label, **style)
-    if log and np.all(values[np.isfinite(values)] > 0) and np.isfinite(values).any():
-        ax.set_yscale("log")
+    finite = values[np.isfinite(values)]
+    if log and finite.size and np.all(finite > 0) and finite.max() >= 10 * finite.min():
+        ax.set_yscale("log")  # only over a decade or more: within one, a log axis gets too few labels
 
 
 def _marks(ax, history: dict, settings: dict, method: str) -> None:
