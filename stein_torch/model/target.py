@@ -203,6 +203,12 @@ class Target:
         return torch.cat(parts, -1)
 
     # ------------------------------------------------------------------ evaluation
+    @property
+    def evaluation_mode(self) -> str | None:
+        """How the user's function is called: "batched", "vmap", "loop" (one value at a time), or None
+        before the first call."""
+        return self._user.mode
+
     def log_prob(self, z: torch.Tensor) -> torch.Tensor:
         """Log density on the unconstrained space (log-Jacobian included).
 
