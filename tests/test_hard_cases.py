@@ -8,6 +8,7 @@ source beside it.
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 
@@ -21,6 +22,11 @@ import hard_cases as hc
 import stein_torch as st
 
 pytestmark = pytest.mark.slow
+
+
+@functools.lru_cache(maxsize=None)
+def pk_reference():
+    return hc.importance_reference(hc.pk_ode())
 
 
 def default_run(case, seed):
@@ -112,7 +118,7 @@ def test_long_tailed_ode_model_misses_only_with_a_warning(seed):
     # pharmacokinetic ODE (RK4) with a long right tail in the absorption rate; reference by adaptive
     # importance sampling (tests/hard_cases.py); a run that misses the tolerance must say so
     case = hc.pk_ode()
-    ref = hc.importance_reference(case)
+    ref = pk_reference()
     assert ref["ess"] > 5000 and ref["max_weight"] < 1e-2  # the reference itself is well determined
     names = sorted(ref["draws"])
     run = default_run(case, seed)
