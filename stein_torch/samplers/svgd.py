@@ -15,7 +15,7 @@ import torch
 
 from .. import io
 from ..checks import check_int, check_type
-from ..kernels import IMQ, Kernel, Linear
+from ..kernels import Kernel
 from ..result import Result
 from ..stein import Scratch, svgd_direction
 from ..stein.ksd import default_ksd_kernel, ksd_from_sums, ksd_sums
@@ -28,8 +28,9 @@ from .record import RunRecord, svgd_result, svgd_result_from_state
 from .schedules import as_drive
 from .setup import configure, starting_points
 from .state import check_common, common_state, plain_repr, read_affine, restore_common, restore_parts, state_tensor
-from .steppers import GradientStep, Stepper, as_stepper
+from .steppers import as_stepper
 from .stopping import KSDPlateau, StopRule, as_stop_rule
+from .svgd_defaults import default_kernel, default_stepper
 from .threads import choose_threads, run_threads
 
 __all__ = ["svgd", "Sampler", "default_kernel", "default_stepper"]
@@ -37,27 +38,6 @@ __all__ = ["svgd", "Sampler", "default_kernel", "default_stepper"]
 FAULT_PATIENCE = 25  # consecutive steps in which faults kept a whole ensemble from moving before the run gives up
 DEFAULT_STEPS = 1000  # most steps of a default run (the stop rule ends it when the particles have settled)
 KSD_EVERY = 10  # steps between KSD records (and the moment records the warnings read)
-
-
-def default_kernel() -> Kernel:
-    """IMQ with the median-heuristic bandwidth plus a saturating linear kernel on standardised
-    coordinates (radius 2).
-
-    Chosen on the reference posteriors (docs/defaults.md): the linear part keeps the spread in
-    higher dimension (moment matching), the IMQ's long range keeps isolated particles coupled to
-    the rest, and the saturation keeps heavy tails from being pushed outwards.
-    """
-    return IMQ() + Linear(radius=2.0)
-
-
-def default_stepper() -> Stepper:
-    """Plain gradient steps of 0.1 in whitened coordinates, no particle moving more than 0.3 a step.
-
-    Steps proportional to the direction converge to the fixed point; per-coordinate adaptive rules
-    (Adam, RMSprop) keep a jitter of the size of their step and, on heavy-tailed posteriors, were
-    seen to let tail particles wander (docs/defaults.md).
-    """
-    return GradientStep(0.1, max_move=0.3)
 
 
 class Sampler:
