@@ -98,7 +98,7 @@ class StopRule:
         self.band_every = _positive_int(band_every, owner, "band_every")
         self.min_steps = _positive_int(min_steps, owner, "min_steps", minimum=0)
         self.velocities: list[list[list[float]]] = []  # last lag + 1 steps: [mean per ensemble, log sd per ensemble]
-        self.moments: list[list] = []  # last window + 1 steps: [step, means (B x d), log sds (B x d), sds (B x d)]
+        self.moments: list[tuple] = []  # last window + 1 steps: (step, means (B, d), log sds (B, d))
         self.last_band_step = -self.band_every
         self.predict_from = 0  # no prediction before this step (set after a change of coordinates)
         self.checks: list[dict] = []
@@ -117,7 +117,7 @@ class StopRule:
         mean_v, sd_v = watch.velocity()
         self.velocities = (self.velocities + [[_values(mean_v), _values(sd_v)]])[-(self.lag + 1):]
         mean, log_sd = watch.moments()
-        self.moments = (self.moments + [[int(step), mean.tolist(), log_sd.tolist()]])[-(self.window + 1):]
+        self.moments = (self.moments + [(int(step), mean.detach().clone(), log_sd.detach().clone())])[-(self.window + 1):]
         if step < self.min_steps or step - self.last_band_step < self.band_every:
             return None
         predicted = step >= self.predict_from and self._predicted_settled()
@@ -160,11 +160,9 @@ class StopRule:
             return False
         _, mean0, log_sd0 = self.moments[0]
         _, mean1, log_sd1 = self.moments[-1]
-        for m0, m1, s0, s1 in zip(mean0, mean1, log_sd0, log_sd1):
-            for a, b, la, lb in zip(m0, m1, s0, s1):
-                if abs(b - a) > self.window_tol * math.exp(lb) or abs(lb - la) > self.window_tol / 2:
-                    return False
-        return True
+        moved = ((mean1 - mean0).abs() / log_sd1.exp()).max()
+        spread = (log_sd1 - log_sd0).abs().max()
+        return bool(moved <= self.window_tol) and bool(spread <= self.window_tol / 2)
 
     # ------------------------------------------------------------------ state
     def settings(self) -> dict:
@@ -172,9 +170,9 @@ class StopRule:
                 "lag": self.lag, "band_every": self.band_every, "min_steps": self.min_steps}
 
     def state_dict(self) -> dict:
-        """Settings and the recent figures as plain values."""
+        """Settings and the recent figures (plain values; the moments as tensors)."""
         return {**self.settings(), "velocities": [list(map(list, v)) for v in self.velocities],
-                "moments": [list(m) for m in self.moments], "last_band_step": self.last_band_step,
+                "moments": [[s, m.clone(), v.clone()] for s, m, v in self.moments], "last_band_step": self.last_band_step,
                 "predict_from": self.predict_from,
                 "checks": [dict(c) for c in self.checks], "reason": self.reason}
 
@@ -186,7 +184,7 @@ class StopRule:
             raise ValueError(f"StopRule.load_state_dict: state is missing keys {sorted(missing)}")
         self.__init__(**{k: state[k] for k in self.settings()})
         self.velocities = [[list(map(float, row)) for row in v] for v in state["velocities"]]
-        self.moments = [list(m) for m in state["moments"]]
+        self.moments = [(int(s), torch.as_tensor(m), torch.as_tensor(v)) for s, m, v in state["moments"]]
         self.last_band_step = int(state["last_band_step"])
         self.predict_from = int(state["predict_from"])
         self.checks = [dict(c) for c in state["checks"]]
