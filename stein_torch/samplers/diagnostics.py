@@ -172,9 +172,10 @@ def _importance_messages(sampler, z: torch.Tensor) -> list[str]:
     if check is not None:
         k_hat, worst, coordinate = check
         if k_hat > THRESHOLDS["pareto_k"]:
+            why = "the weights degenerate" if math.isinf(k_hat) else f"Pareto k = {k_hat:.2f} > {THRESHOLDS['pareto_k']}"
             found.append(
-                f"an importance-sampling check of the particles failed (Pareto k = {k_hat:.2f} > "
-                f"{THRESHOLDS['pareto_k']}): the target has mass the particles do not cover (a long tail, a "
+                f"an importance-sampling check of the particles failed ({why}): the target has mass the particles "
+                "do not cover (a long tail, a "
                 "missed mode, or a funnel). The spread may be too small; compare with MCMC (st.langevin)."
             )
         elif abs(worst) > THRESHOLDS["tail_log_sd"]:

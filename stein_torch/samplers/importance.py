@@ -24,6 +24,8 @@ import torch
 __all__ = ["fit_generalized_pareto", "smoothed_log_weights", "spread_check", "mode_shares"]
 
 CHECK_DRAWS = 2000  # log-density evaluations of the spread check
+CHECK_MAX_DIM = 100  # above this many coordinates a proposal fitted to the particles cannot be weighted usefully
+MIN_ESS = 20  # smoothed weights with a smaller effective sample size are degenerate (the check fails)
 MODE_DRAWS = 400  # per mode, for the mode-mass check
 WIDEN = 1.0  # the spread check's proposal: the particles' covariance scaled by WIDEN^2 ...
 DF = 5  # ... with Student-t tails of DF degrees of freedom (an integer: chi-square by normals)
@@ -134,12 +136,14 @@ def spread_check(target, z: torch.Tensor, generator: torch.Generator, draws: int
     Returns
     -------
     (k, worst, coordinate) or None
-        Pareto k of the weights, the largest |log(importance sd / particle sd)| (signed) over the
-        coordinates of the latents on their constrained scale (the scale the user reads) and its
-        index there; None when the check cannot run (too few particles, the log density raised).
+        Pareto k of the weights (inf when the smoothed weights' effective sample size is below
+        ``MIN_ESS``), the largest |log(importance sd / particle sd)| (signed) over the coordinates of
+        the latents on their constrained scale (the scale the user reads) and its index there; None
+        when the check cannot run (too few particles, more than ``CHECK_MAX_DIM`` coordinates, the log
+        density raised).
     """
     pooled = z.reshape(-1, z.shape[-1]).detach()
-    if pooled.shape[0] < 10 or not bool(torch.isfinite(pooled).all()):
+    if pooled.shape[0] < 10 or pooled.shape[-1] > CHECK_MAX_DIM or not bool(torch.isfinite(pooled).all()):
         return None
     mean, chol = pooled.mean(0), WIDEN * _covariance_factor(pooled)
     x = _student_t(draws, mean, chol, DF, generator)
@@ -154,6 +158,8 @@ def spread_check(target, z: torch.Tensor, generator: torch.Generator, draws: int
         return None
     w = np.exp(log_w[usable] - np.max(log_w[usable]))
     w /= w.sum()
+    if 1 / np.sum(w**2) < MIN_ESS:  # degenerate weights: the estimate says nothing, the check fails
+        return max(k, math.inf), 0.0, 0
     xs = values[usable]
     is_mean = (w[:, None] * xs).sum(0)
     is_sd = np.sqrt((w[:, None] * (xs - is_mean) ** 2).sum(0))
