@@ -1,7 +1,7 @@
 """Warnings of a run, the mode search, the importance-sampling check and the run's torch threads.
 
 Sources: scipy.stats.genpareto (draws with a known shape) for the Pareto fit of "Pareto Smoothed
-Importance Sampling" (arXiv:1507.02646); closed-form Gaussian moments and mixture weights; the
+Importance Sampling" (arXiv:1507.02646, from memory); closed-form Gaussian moments and mixture weights; the
 Laplace mass of a Gaussian component, its weight (closed form).
 """
 

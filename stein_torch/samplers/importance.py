@@ -1,17 +1,17 @@
 """Importance-sampling checks of a particle set: Pareto-smoothed weights and their k diagnostic.
 
-A proposal q is fitted to the particles (their mean and covariance, with Student-t tails),
-M points are drawn from it and weighted by the target, w = p / q (unnormalised log density: the
-weights are self-normalised). Pareto-smoothed importance sampling ("Pareto Smoothed Importance
-Sampling", arXiv:1507.02646) fits a generalised Pareto distribution to the largest weights and
+A proposal q is fitted to the particles (their mean and covariance, with Student-t tails), M points
+are drawn from it and weighted by the target, w = p / q (unnormalised log density: the weights are
+self-normalised). Pareto-smoothed importance sampling ("Pareto Smoothed Importance Sampling",
+arXiv:1507.02646, from memory) fits a generalised Pareto distribution to the largest weights and
 replaces them by its quantiles; the fitted shape k tells whether the weights have a finite variance
-(k < 0.5) and whether the estimate can be trusted at all (k < 0.7). Used to check an approximation of
-a posterior as in "Yes, but Did It Work?: Evaluating Variational Inference" (arXiv:1802.02538): a
-proposal built from the approximation with k > 0.7 misses mass of the target, and a smoothed
-importance estimate of the spread far from the particles' says the particles are too narrow or too
-wide. The generalised Pareto fit is the empirical-Bayes estimator of "A New and Efficient Estimation
-Method for the Generalized Pareto Distribution" (DOI 10.1198/tech.2009.08017), with the weak prior
-towards k = 0.5 of arXiv:1507.02646.
+(k < 0.5) and whether the estimate can be trusted at all (k < 0.7). Used to check an approximation
+of a posterior as in "Yes, but Did It Work?: Evaluating Variational Inference" (arXiv:1802.02538,
+from memory): a proposal built from the approximation with k > 0.7 misses mass of the target, and a
+smoothed importance estimate of the spread far from the particles' says the particles are too
+narrow or too wide. The generalised Pareto fit is the empirical-Bayes estimator of "A New and
+Efficient Estimation Method for the Generalized Pareto Distribution" (DOI 10.1198/tech.2009.08017,
+from memory), with the weak prior towards k = 0.5 of arXiv:1507.02646.
 """
 
 from __future__ import annotations
