@@ -140,7 +140,8 @@ def report(run, python_warnings: list[str]) -> list[str]:
         lines.append(f"final KSD per ensemble (whitened coordinates): {values}")
     if chains > 1:
         lines.append(_rhat_line(run, chains))
-    every = [str(w) for w in run.warnings] + [w for w in python_warnings if w not in run.warnings]
+    own = [str(w) for w in run.warnings]  # the run's warnings, which it also issued as Python warnings
+    every = own + [w for w in python_warnings if w.split(": ", 1)[-1] not in own]
     if every:
         lines.append(f"warnings ({len(every)}):")
         lines.extend(f"  - {w}" for w in every)

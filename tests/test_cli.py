@@ -203,7 +203,7 @@ def test_bench_core_quick_prints_every_row(capsys, one_thread):
     code = main(["bench", "core", "--quick"])
     printed = capsys.readouterr().out
     assert code == 0  # --quick never fails on figures (sizes too small to mean anything)
-    for tag in ("(a)", "(b)", "(c)", "(d)"):
+    for tag in ("(a)", "(b)", "(c)", "(d)", "(e)"):
         assert tag in printed
     assert "naive direction matches the engine to" in printed
     # the naive per-particle direction equals the batched engine (common practice: compare two
