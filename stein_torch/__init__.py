@@ -13,12 +13,13 @@ from .files import load
 from .model import Latent, ObservedData, SamplerDefaults, Target
 from .race import race
 from .result import PredictiveBands, Result, predictive_interval
-from .samplers import Langevin, Sampler, StopRule, langevin, schedules, steppers, svgd
+from .samplers import NUTS, Langevin, Sampler, StopRule, langevin, nuts, schedules, steppers, svgd
 from .stein import ksd, svgd_direction
 
 __all__ = [
     "Latent",
     "Langevin",
+    "NUTS",
     "ObservedData",
     "PredictiveBands",
     "Result",
@@ -31,6 +32,7 @@ __all__ = [
     "ksd",
     "langevin",
     "load",
+    "nuts",
     "predictive_interval",
     "race",
     "schedules",
