@@ -9,6 +9,7 @@ torch.Size([1, 100, 2])
 
 from . import io, kernels
 from ._version import __version__
+from .crosscheck import Crosscheck, crosscheck
 from .files import load
 from .model import Latent, ObservedData, SamplerDefaults, Target
 from .race import race
@@ -17,6 +18,7 @@ from .samplers import NUTS, Langevin, Sampler, StopRule, langevin, nuts, schedul
 from .stein import ksd, svgd_direction
 
 __all__ = [
+    "Crosscheck",
     "Latent",
     "Langevin",
     "NUTS",
@@ -27,6 +29,7 @@ __all__ = [
     "SamplerDefaults",
     "StopRule",
     "Target",
+    "crosscheck",
     "io",
     "kernels",
     "ksd",
