@@ -46,7 +46,7 @@ def scalar_columns(draws: Mapping[str, object]) -> tuple[list[str], np.ndarray]:
     for name, value in draws.items():
         array = np.asarray(value.detach().cpu() if hasattr(value, "detach") else value, dtype=np.float64)
         shape = array.shape[2:]
-        flat = array.reshape(*array.shape[:2], -1)
+        flat = array.reshape(*array.shape[:2], int(np.prod(shape, dtype=np.int64)))
         if not shape:
             names.append(name)
         else:

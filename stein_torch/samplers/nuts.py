@@ -3,9 +3,10 @@
 All chains advance as one (chains, dim) tensor, one batched score evaluation per leapfrog step
 (:mod:`.trajectory`: multinomial sampling of the trajectory and the generalised no-U-turn criterion,
 "The No-U-Turn Sampler", arXiv:1111.4246, and "A Conceptual Introduction to Hamiltonian Monte Carlo",
-arXiv:1701.02434). The chains run on the whitened coordinates of :func:`.setup.starting_points`
-(the Laplace map at the mode by default), where warm-up (:mod:`.warmup`) adapts a per-chain step
-size by dual averaging and a diagonal or dense metric shared by the chains. A point where the model
+arXiv:1701.02434). The chains run on the coordinates of :func:`.setup.starting_points` (the
+unconstrained space by default; whitened by the Laplace map at the mode on request), where warm-up
+(:mod:`.warmup`) adapts a per-chain step size by dual averaging and a diagonal or dense metric
+shared by the chains. A point where the model
 is not finite (or raises) ends its trajectory as a divergence. One ``step()`` is one transition of
 every chain; the shared loop (:func:`.loop.run_loop`) gives the progress bar, Ctrl-C and checkpoints.
 """
@@ -59,7 +60,7 @@ class NUTS:
 
     def __init__(self, target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmup: int = DEFAULT_WARMUP,
                  *, metric: str | None = None, max_depth: int = DEFAULT_MAX_DEPTH, target_accept: float = TARGET_ACCEPT,
-                 init=None, precondition: str | None = "auto", dtype: torch.dtype = torch.float64,
+                 init=None, precondition: str | None = None, dtype: torch.dtype = torch.float64,
                  seed: int | None = None, device=None, state: Mapping | None = None):
         self.chains = check_int(chains, "nuts: chains")
         self.draws = check_int(draws, "nuts: draws")
@@ -248,7 +249,7 @@ def _start(setup, evaluate, chains: int):
 
 def nuts(target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmup: int = DEFAULT_WARMUP,
          seed: int | None = None, metric: str | None = None, init=None, progress: bool | None = None, *,
-         max_depth: int = DEFAULT_MAX_DEPTH, target_accept: float = TARGET_ACCEPT, precondition: str | None = "auto",
+         max_depth: int = DEFAULT_MAX_DEPTH, target_accept: float = TARGET_ACCEPT, precondition: str | None = None,
          dtype: torch.dtype = torch.float64, device=None, checkpoint=None, checkpoint_every: int | None = None,
          resume=None) -> Result:
     """Sample by the no-U-turn sampler, all chains batched.
@@ -268,9 +269,11 @@ def nuts(target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmu
         Same seed, same draws, bit for bit.
     metric : {"diag", "dense"}, optional
         Metric adapted in warm-up; default "dense" up to 200 coordinates, "diag" above.
-    init : None, Tensor or dict, optional
-        Starting points: None draws them from the Laplace approximation at the mode; a tensor (flat
-        targets) or dict name -> tensor of constrained values with leading shape (chains,).
+    init : None, "prior", Tensor or dict, optional
+        Starting points: None draws them from a standard normal on the unconstrained space (from the
+        Laplace approximation with ``precondition="laplace"``); "prior" (targets from
+        :meth:`Target.from_priors`); a tensor (flat targets) or dict name -> tensor of constrained
+        values with leading shape (chains,).
     progress : bool, optional
         Progress bar (draws, divergences so far, step size, tree depth); default on when stderr is a
         terminal.
@@ -279,9 +282,12 @@ def nuts(target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmu
     target_accept : float, default=0.8
         Mean acceptance statistic that dual averaging aims the step size at; raise it (0.9, 0.95)
         when divergences are reported.
-    precondition : {"auto", "laplace", "covariance", None}, default="auto"
-        Fixed whitening by the curvature at the mode ("auto": up to 1000 coordinates), as in
-        :func:`stein_torch.svgd`; "covariance" and None: none (the metric adaptation does that work).
+    precondition : {None, "laplace", "auto", "covariance"}, default=None
+        None: no fixed whitening; warm-up adapts the metric from the identity. "laplace" (and "auto"
+        up to 1000 coordinates, as in :func:`stein_torch.svgd`): run on coordinates whitened by the
+        curvature at the mode, starting from that Laplace approximation. It saves warm-up on badly
+        scaled models but traps the chains where the mode is a poor guide (at the neck of a funnel:
+        docs/defaults.md). "covariance": the same as None (the metric adaptation does that work).
     dtype : torch.dtype, default=torch.float64
     device : str or torch.device, optional
     checkpoint, checkpoint_every, resume
