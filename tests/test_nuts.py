@@ -62,10 +62,10 @@ def test_gaussian_100d_condition_1000_dense_metric(precondition):
     assert run.warnings == []
 
 
-def test_gaussian_20d_condition_1000_default_settings():
+def test_gaussian_20d_condition_100_default_settings():
     # the same closed-form check at 20-D with every setting at its default (dense metric, no whitening):
     # the short version of the 100-D floor for the default suite
-    target, mean, covariance = rotated_gaussian(dim=20, seed=3)
+    target, mean, covariance = rotated_gaussian(dim=20, condition=100.0, seed=3)
     run = st.nuts(target, seed=5, progress=False)
     assert run.settings["metric"] == "dense" and run.settings["precondition"] == "None"
     check_moments(run, mean, covariance.diagonal().sqrt())
