@@ -30,6 +30,7 @@ METHODS: dict[str, tuple[str, dict[str, str]]] = {
 }
 STOP_REASONS = {
     "steps": "ran every step allowed",
+    "settled": "the particles settled: their moments stopped moving and the KSD is at the level of exact draws",
     "ksd_plateau": "the kernel Stein discrepancy stopped improving",
     "ksd_tolerance": "the kernel Stein discrepancy fell below the tolerance",
     "draws": "all draws taken",
