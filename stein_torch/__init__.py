@@ -13,7 +13,7 @@ from .files import load
 from .model import Latent, ObservedData, SamplerDefaults, Target
 from .race import race
 from .result import PredictiveBands, Result, predictive_interval
-from .samplers import Langevin, Sampler, StopRule, langevin, schedules, steppers, svgd
+from .samplers import Langevin, RankFailure, Sampler, Sharding, StopRule, langevin, schedules, steppers, svgd
 from .stein import ksd, svgd_direction
 
 __all__ = [
@@ -21,9 +21,11 @@ __all__ = [
     "Langevin",
     "ObservedData",
     "PredictiveBands",
+    "RankFailure",
     "Result",
     "Sampler",
     "SamplerDefaults",
+    "Sharding",
     "StopRule",
     "Target",
     "io",

@@ -6,8 +6,10 @@ checkpoints, history) -> :class:`~stein_torch.result.Result`.
 """
 
 from . import schedules, steppers
+from .comm import RankFailure
+from .distributed import Sharding
 from .langevin import Langevin, langevin
 from .stopping import StopRule
 from .svgd import Sampler, svgd
 
-__all__ = ["svgd", "Sampler", "langevin", "Langevin", "StopRule", "schedules", "steppers"]
+__all__ = ["svgd", "Sampler", "langevin", "Langevin", "StopRule", "Sharding", "RankFailure", "schedules", "steppers"]

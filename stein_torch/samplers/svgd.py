@@ -19,6 +19,7 @@ from ..result import Result
 from ..stein import Scratch, svgd_direction
 from ..stein.ksd import default_ksd_kernel, ksd_from_sums, ksd_sums
 from .axis import ParticleAxis
+from .distributed import sharding
 from .faults import Evaluator, persistent_fault_message, shrink_faulty_steps
 from .loop import append_history, check_run_options, run_loop
 from .precondition import Affine, covariance_affine, rewhiten_due
@@ -82,6 +83,7 @@ class Sampler:
         state: Mapping | None = None,
         anneal=None,
         stop: StopRule | bool | None = None,
+        axis: ParticleAxis | None = None,
     ):
         setup = configure(target, init=init, dtype=dtype, precondition=precondition, seed=seed, device=device, state=state)
         self.target, self.dtype, self.device = setup.target, setup.dtype, setup.device
@@ -95,7 +97,7 @@ class Sampler:
             stepper = defaults.stepper
         self.kernel = default_kernel() if kernel is None else check_type(kernel, "kernel", Kernel, "stein_torch kernel (st.kernels.*)")
         self.stepper = default_stepper() if stepper is None else as_stepper(stepper)
-        self.axis = ParticleAxis(self.n)
+        self.axis = ParticleAxis(self.n) if axis is None else axis  # sharded runs: set by svgd(distributed=)
         self.evaluate = Evaluator(self.target)
         self.scratch = Scratch()  # pairwise buffers reused by every step's direction and KSD
         self.data_stream = target.data  # its state_dict makes checkpoints resume the minibatches
@@ -112,7 +114,8 @@ class Sampler:
         self._last_velocity_eval = None  # (u, lp, score, bad) of the latest velocity call
         if state is None:
             lead = (self.ensembles, self.n)
-            self.affine, self.laplace_ok, self.u, self.lp, self.score = starting_points(setup, self.evaluate, lead)
+            evaluate = lambda u, affine, first=False: self._evaluate(u, affine=affine, first=first)  # noqa: E731
+            self.affine, self.laplace_ok, self.u, self.lp, self.score = starting_points(setup, evaluate, lead)
             self.stepper.bind(self.u)
         else:  # resuming: the set-up (mode, whitening) comes from the checkpoint, not recomputed
             self.load_state_dict(state, argname="resume")
@@ -127,13 +130,14 @@ class Sampler:
         self.evaluate.count = int(value)
 
     # ------------------------------------------------------------------ evaluation and direction
-    def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None):
+    def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None, *, affine=None, first: bool = False):
         """Log density, whitened score and faults of all particles u (B, N, d); this process
-        evaluates its own rows, the axis gathers the rest."""
-        rows = self.axis.rows
+        evaluates its own rows, the axis gathers the rest (and the count is that of all rows)."""
+        rows, count = self.axis.rows, self.evaluate.count
         local_mask = None if mask is None else mask[:, rows]
-        lp, score, bad = self.evaluate(u[:, rows], self.affine, mask=local_mask)
-        return self.axis.gather(lp), self.axis.gather(score), self.axis.gather(bad)
+        lp, score, bad = self.evaluate(u[:, rows], self.affine if affine is None else affine, mask=local_mask, first=first)
+        self.evaluate.count = count + (u.shape[:-1].numel() if mask is None else int(mask.sum()))
+        return self.axis.gather_many(lp, score, bad)
 
     def direction(self, u: torch.Tensor, score: torch.Tensor, lp: torch.Tensor) -> torch.Tensor:
         """The SVGD direction (B, N, d) at particles u with whitened scores."""
@@ -227,6 +231,10 @@ class Sampler:
             row["ksd"] = np.full(self.ensembles, np.nan)
         append_history(self.history, row)
 
+    def stop_together(self, requested: bool) -> bool:
+        """Whether any process sharing this run asks to stop (see :meth:`ParticleAxis.agree`)."""
+        return self.axis.agree(requested, self.u)
+
     def progress_figures(self) -> dict | None:
         """Figures for the progress bar after a KSD check (else None)."""
         if self.step_count % self.ksd_every:
@@ -275,8 +283,10 @@ class Sampler:
         restore_parts(state, parts)  # the step rule's own state after bind()
 
     def save(self, path) -> None:
-        """Write :meth:`state_dict` to ``path`` atomically (see :mod:`stein_torch.io`)."""
-        io.save_checkpoint(path, self.state_dict())
+        """Write :meth:`state_dict` to ``path`` atomically (see :mod:`stein_torch.io`); in a sharded
+        run only rank 0 writes (every rank holds the same state)."""
+        if self.axis.rank == 0:
+            io.save_checkpoint(path, self.state_dict())
 
     # ------------------------------------------------------------------ output
     def result(self) -> Result:
@@ -287,7 +297,7 @@ class Sampler:
         if data is not None and data.batch_size is not None:  # report the full-data log density
             from ..model.data import full_log_prob
 
-            lp = full_log_prob(self.target, z)
+            lp = self.axis.gather(full_log_prob(self.target, z[:, self.axis.rows]))
         history = {k: np.asarray(v) for k, v in self.history.items()}
         settings = {
             "method": "svgd", "kernel": repr(self.kernel), "stepper": repr(self.stepper), "steps": self.step_count,
@@ -329,6 +339,7 @@ def svgd(
     resume=None,
     anneal=None,
     stop: StopRule | bool | None = None,
+    distributed=None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
 
@@ -389,6 +400,10 @@ def svgd(
         The KSD of each ensemble (whitened coordinates) is recorded every ``stop.every`` steps (10
         without a rule) in ``history["ksd"]`` (NaN between checks), the final one in
         ``settings["ksd"]``; ``stop_reason`` says why the run ended.
+    distributed : {None, False, True, "particles", "data"} or Sharding, optional
+        Share the run between the processes of a torch.distributed group (``torchrun``; see
+        docs/distributed.md): "particles" (or True) splits the particles, "data" the observations.
+        Results match one process to rounding; rank 0 writes checkpoints; every rank returns the Result.
 
     Returns
     -------
@@ -405,11 +420,16 @@ def svgd(
     """
     steps, progress, checkpoint, _ = check_run_options(steps, progress, checkpoint, checkpoint_every)
     state = io.load_checkpoint(resume, "resume") if resume is not None else None
-    sampler = Sampler(
-        target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
-        precondition=precondition, seed=seed, device=device, state=state, anneal=anneal, stop=stop,
-    )
-    if sampler.step_count > steps:
-        raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")
-    sampler.run(steps - sampler.step_count, progress=progress, checkpoint=checkpoint, checkpoint_every=checkpoint_every)
-    return sampler.result()
+    same = dict(particles=particles, steps=steps, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init,
+                dtype=dtype, precondition=precondition, seed=seed, anneal=anneal, stop=stop, resume=state is not None)
+    with sharding(distributed, target, particles=particles, seed=seed, resume=resume, device=device, settings=same) as shard:
+        sampler = Sampler(
+            shard.target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
+            precondition=precondition, seed=shard.seed, device=device, state=state, anneal=anneal, stop=stop,
+            axis=shard.axis,
+        )
+        if sampler.step_count > steps:
+            raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")
+        sampler.run(steps - sampler.step_count, progress=progress and shard.lead, checkpoint=checkpoint,
+                    checkpoint_every=checkpoint_every)
+        return shard.finish(sampler.result())
