@@ -84,6 +84,8 @@ def _build_parser() -> _Parser:
     run.add_argument("--ensembles", type=_positive_int, default=1, help="independent particle sets (default: 1)")
     run.add_argument("--seed", type=_seed, default=0, help="random seed (default: 0)")
     run.add_argument("--out", metavar="FILE.nc", help="NetCDF output (default: MODEL.nc in the current folder)")
+    run.add_argument("--ranks", type=_positive_int, default=1,
+                     help="processes sharing the particles, started through torchrun on this machine (default: 1)")
 
     bench = sub.add_parser("bench", parents=[common], help="run benchmark suites and print their tables")
     bench.add_argument("suites", nargs="*", metavar="SUITE", help="suite names or 'all' (default: core)")
@@ -104,7 +106,7 @@ def main(argv: list[str] | None = None) -> int:
         args, extra = parser.parse_known_args(argv)
         if extra and args.command != "bench":  # suite options (e.g. --names, --seeds) go through to the suite
             parser.error(f"unrecognized arguments: {' '.join(extra)}")
-        args.suite_options = extra
+        args.suite_options, args.argv = extra, argv
         debug = getattr(args, "debug", False)
         _quiet_libraries()
         command = {"demo": _demo, "run": _run, "bench": _bench}[args.command]
@@ -191,12 +193,21 @@ def _run(args) -> int:
     if not (out.parent if str(out.parent) else Path(".")).is_dir():
         raise UsageError(f"--out: the folder {str(out.parent)!r} does not exist")
     target = _load_target(model, args.target, st.Target)
+    from . import launch
+
+    if args.ranks > 1 and not launch.inside_workers():  # start the workers, each running this command
+        return launch.start_workers(args.ranks, args.argv, getattr(args, "threads", None))
+    if launch.inside_workers() and launch.worker_count() != args.ranks:
+        raise UsageError(f"--ranks {args.ranks}: torchrun started {launch.worker_count()} workers; give the same number")
     start = time.perf_counter()
-    run = st.svgd(target, particles=args.particles, steps=args.steps, ensembles=args.ensembles, seed=args.seed)
+    run = st.svgd(target, particles=args.particles, steps=args.steps, ensembles=args.ensembles, seed=args.seed,
+                  distributed="particles" if args.ranks > 1 else None)
     seconds = time.perf_counter() - start
+    if launch.worker_rank() != 0:  # rank 0 prints and writes; the others hold the same particles
+        return 0
     print(
         f"{model.name}: {args.ensembles} x {args.particles} particles, {args.steps} SVGD steps, "
-        f"{seconds:.1f} s\n"
+        f"{seconds:.1f} s" + (f" on {args.ranks} ranks" if args.ranks > 1 else "") + "\n"
     )
     print(run.summary().to_string())
     save_netcdf(run.to_inference_data(), out)
