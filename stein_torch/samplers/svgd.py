@@ -61,7 +61,8 @@ class Sampler:
     """Stateful SVGD run: ``step()``, ``run(steps)``, ``state_dict()``, ``result()``.
 
     Parameters are those of :func:`svgd`; ``state`` (a :meth:`state_dict`) continues a saved run
-    without recomputing its set-up.
+    without recomputing its set-up; ``axis`` shares the particles between processes (set by
+    ``svgd(distributed=...)``, see :mod:`stein_torch.samplers.distributed`).
     """
 
     name = "svgd"
@@ -421,7 +422,8 @@ def svgd(
     steps, progress, checkpoint, _ = check_run_options(steps, progress, checkpoint, checkpoint_every)
     state = io.load_checkpoint(resume, "resume") if resume is not None else None
     same = dict(particles=particles, steps=steps, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init,
-                dtype=dtype, precondition=precondition, seed=seed, anneal=anneal, stop=stop, resume=state is not None)
+                dtype=dtype, precondition=precondition, seed=seed, anneal=anneal, stop=stop,
+                resume=None if state is None else (state.get("step"), state.get("u")))
     with sharding(distributed, target, particles=particles, seed=seed, resume=resume, device=device, settings=same) as shard:
         sampler = Sampler(
             shard.target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
