@@ -91,11 +91,11 @@ def holed_start(n: int) -> torch.Tensor:
 
 CASES = {
     # name: (target factory, svgd keyword arguments)
-    "particles": (lambda: gaussian_target(), dict(particles=41, steps=40, seed=3, distributed="particles")),
+    "particles": (lambda: gaussian_target(), dict(particles=41, steps=40, seed=3, ensembles=2, distributed="particles")),
     "particles_regression": (lambda: regression_target(), dict(particles=30, steps=30, seed=1, distributed=True)),
     "data": (lambda: regression_target(), dict(particles=30, steps=30, seed=1, distributed="data")),
     "data_minibatch": (lambda: regression_target(batch_size=64),
-                       dict(particles=30, steps=30, seed=2, distributed="data")),
+                       dict(particles=30, steps=30, seed=2, ensembles=2, distributed="data")),
     "nan_one_rank": (holed_target, dict(particles=40, steps=8, seed=0, precondition=None,
                                         init=holed_start(40), stop=False, distributed="particles")),
 }

@@ -236,9 +236,9 @@ def test_checkpoints_are_written_once_and_resume_on_another_number_of_ranks(tmp_
 MODEL = """
 import os, signal, torch, stein_torch as st
 calls = {"n": 0}
-def log_prob(x):  # a correlated Gaussian; rank 1 kills itself in its 30th evaluation when asked to
+def log_prob(x):  # a correlated Gaussian; rank 1 kills itself in its 15th evaluation when asked to
     calls["n"] += 1
-    if os.environ.get("KILL_RANK_1") and os.environ.get("RANK") == "1" and calls["n"] == 30:
+    if os.environ.get("KILL_RANK_1") and os.environ.get("RANK") == "1" and calls["n"] == 15:
         os.kill(os.getpid(), signal.SIGKILL)
     return -0.5 * (x[..., 0] ** 2 + (x[..., 1] - 0.5 * x[..., 0]) ** 2 / 0.25)
 target = st.Target(log_prob, dim=2)

@@ -34,7 +34,7 @@ import stein_torch as st
 from stein_torch.samplers.distributed import sharding
 from stein_torch.samplers.svgd import Sampler
 
-__all__ = ["main", "scaling_table"]
+__all__ = ["main", "scaling_table", "received_bytes"]
 
 FULL = {"score": (200_000, 20, 256), "pairwise": (16_384, 16), "memory": (200_000, 10), "rounds": 3, "steps": 5}
 QUICK = {"score": (4_000, 5, 32), "pairwise": (512, 4), "memory": (2_000, 4), "rounds": 1, "steps": 2}
@@ -165,25 +165,41 @@ def run_config(config: dict, ranks: int) -> dict:
 
 
 # ------------------------------------------------------------------------------------------- scaling
-def scaling_table(one: dict, exchange_numbers: float, latency: float, bandwidth: float, collectives: int,
+def received_bytes(mode: str, n: int, d: int, r: int, ensembles: int = 1) -> float:
+    """Bytes each rank receives per step (one score evaluation per step; docs/distributed.md)."""
+    if r == 1:
+        return 0.0
+    check = 16 * (r - 1)  # the stop / same-particles agreement
+    if mode == "particles":  # (lp, score, fault flag) of each block, then the direction of each block
+        return 8 * ensembles * (r - 1) * math.ceil(n / r) * (2 * d + 2) + check
+    return 8 * (r - 1) * (ensembles * n * (d + 1) + r) + check  # partial sums of every rank
+
+
+def scaling_table(one: dict, mode: str, n: int, d: int, latency: float, bandwidth: float,
                   ranks=(1, 2, 4, 8, 16, 32, 64)) -> list[tuple[int, float, float, float]]:
     """Projected seconds per step against the number of ranks R.
 
-    Model: the score evaluations and the SVGD direction divide by R; the rest of a step (the step
-    rule, bandwidth, standardiser on the full set) is repeated on every rank; each of ``collectives``
-    ring all-gathers costs (R - 1) latencies, and every rank receives (R - 1)/R of
-    ``exchange_numbers`` float64 numbers per step.
+    Model: the score evaluations (and, sharding particles, the SVGD direction) divide by R; the rest
+    of a step (the step rule, bandwidth, standardiser on the full set) is repeated on every rank;
+    each exchange is a ring all-gather costing (R - 1) latencies, plus :func:`received_bytes` over
+    the bandwidth. Exchanges per step: 3 sharding particles, 2 sharding data.
+
+    Parameters
+    ----------
+    one : dict
+        Seconds per step of a 1-rank run and of its ``evaluate`` and ``direction`` parts.
 
     Returns
     -------
     list of (R, compute seconds, exchange seconds, speed-up over one rank)
     """
-    divided = one["evaluate"] + one["direction"]
+    divided = one["evaluate"] + (one["direction"] if mode == "particles" else 0.0)
     repeated = max(0.0, one["seconds"] - divided)
+    exchanges = 3 if mode == "particles" else 2
     rows = []
     for r in ranks:
         compute = repeated + divided / r
-        exchange = 0.0 if r == 1 else collectives * (r - 1) * latency + (r - 1) / r * 8 * exchange_numbers / bandwidth
+        exchange = 0.0 if r == 1 else exchanges * (r - 1) * latency + received_bytes(mode, n, d, r) / bandwidth
         rows.append((r, compute, exchange, one["seconds"] / (compute + exchange)))
     return rows
 
@@ -245,22 +261,23 @@ def main(args: list[str]) -> int:
     for name in configs:
         seconds = ", ".join(f"{r['seconds']:.4f}" for r in raw[name])
         share = statistics.median(r["exchange"] / r["seconds"] for r in raw[name])
-        print(f"    {name:<20} seconds per step {seconds}; exchanges {100 * share:.1f}% of a step")
+        print(f"    {name:<20} seconds per step {seconds}; exchanges (with waiting) {100 * share:.1f}% of a step")
     net = raw["score particles"][-1]
     print(f"(e) loopback all-gather, 2 ranks: latency {1e6 * net['latency']:.0f} us, bandwidth "
           f"{net['bandwidth'] / 1e9:.2f} GB/s")
     projections = {}
-    for name, (numbers, collectives, one) in {
-        f"logistic N={n} d={d}, particle sharding": (n * (2 * d + 2), 5, raw["score 1"]),
-        f"pairwise N={n_p} d={d_p}, particle sharding": (n_p * (2 * d_p + 2), 5, raw["pairwise 1"]),
+    nets = {"loopback": (net["latency"], net["bandwidth"]), **NETWORKS}
+    for name, (mode, n_, d_, one) in {
+        f"logistic N={n} d={d}, particle sharding": ("particles", n, d, raw["score 1"]),
+        f"logistic N={n} d={d}, data sharding": ("data", n, d, raw["score 1"]),
+        f"pairwise N={n_p} d={d_p}, particle sharding": ("particles", n_p, d_p, raw["pairwise 1"]),
     }.items():
         base = {k: statistics.median(r[k] for r in one) for k in ("seconds", "evaluate", "direction")}
-        print(f"    projection, {name} ({8 * numbers / 2**20:.2f} MiB gathered per step):")
-        print(f"    {'R':>4} {'compute s':>10} " + " ".join(f"{'exch ' + k:>14} {'speed-up':>8}" for k in
-                                                         ("loopback", *NETWORKS)))
-        nets = {"loopback": (net["latency"], net["bandwidth"]), **NETWORKS}
-        tables = {k: scaling_table(base, numbers, lat, bw, collectives) for k, (lat, bw) in nets.items()}
+        tables = {k: scaling_table(base, mode, n_, d_, lat, bw) for k, (lat, bw) in nets.items()}
         projections[name] = tables
+        print(f"    projection, {name} ({received_bytes(mode, n_, d_, 2) / 2**20:.3f} MiB into each rank per "
+              f"step at R=2, {received_bytes(mode, n_, d_, 64) / 2**20:.3f} MiB at R=64):")
+        print(f"    {'R':>4} {'compute s':>10} " + " ".join(f"{'exch ' + k:>14} {'speed-up':>8}" for k in nets))
         for i, (r, compute, _, _) in enumerate(tables["loopback"]):
             cells = " ".join(f"{tables[k][i][2]:>14.5f} {tables[k][i][3]:>8.1f}" for k in nets)
             print(f"    {r:>4} {compute:>10.4f} {cells}")
