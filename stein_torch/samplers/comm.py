@@ -58,6 +58,9 @@ class Comm:
         naming of failed ranks.
     timeout : float
         Seconds an exchange waits for the slowest process before the run fails.
+    device : torch.device, optional
+        Where the backend exchanges tensors (CPU for gloo, the current CUDA device for NCCL); tensors
+        elsewhere are copied there and back.
 
     Attributes
     ----------
@@ -68,8 +71,9 @@ class Comm:
         The group failed or was aborted; no exchange is attempted any more.
     """
 
-    def __init__(self, group, store, timeout: float):
+    def __init__(self, group, store, timeout: float, device=None):
         self.group = group
+        self.device = torch.device("cpu") if device is None else torch.device(device)
         self.store = store
         self.timeout = float(timeout)
         self.rank = dist.get_rank(group)
@@ -132,14 +136,14 @@ class Comm:
         if self.world == 1:
             return [tensor]
         boolean = tensor.dtype == torch.bool
-        local = (tensor.to(torch.uint8) if boolean else tensor).contiguous()
+        local = (tensor.to(torch.uint8) if boolean else tensor).to(self.device).contiguous()
 
         def exchange():
             out = [torch.empty_like(local) for _ in range(self.world)]
             dist.all_gather(out, local, group=self.group)
             return out
 
-        out = self._exchange("an all-gather", exchange)
+        out = [t.to(tensor.device) for t in self._exchange("an all-gather", exchange)]
         return [t.bool() for t in out] if boolean else out
 
     def gather_rows(self, local: torch.Tensor, counts: list[int]) -> torch.Tensor:
@@ -169,7 +173,7 @@ class Comm:
         width = max(counts)
         if local.shape[-1] < width:
             local = torch.cat([local, local.new_zeros((*local.shape[:-1], width - local.shape[-1]))], -1)
-        local = local.contiguous()
+        home, local = local.device, local.to(self.device).contiguous()
 
         def exchange():
             out = [torch.empty_like(local) for _ in range(self.world)] if self.rank == 0 else None
@@ -177,7 +181,7 @@ class Comm:
             return out
 
         out = self._exchange("the gather of the pointwise log-likelihood", exchange)
-        return None if out is None else torch.cat([p[..., :c] for p, c in zip(out, counts)], -1)
+        return None if out is None else torch.cat([p[..., :c].to(home) for p, c in zip(out, counts)], -1)
 
     def _exchange(self, what: str, exchange):
         if self.broken:

@@ -298,7 +298,8 @@ def sharding(distributed, target, *, particles: int, seed, resume, device, setti
     on_cuda = device is not None and torch.device(device).type == "cuda"
     join_process_group("nccl" if on_cuda else "gloo")
     group = dist.new_group(backend="nccl" if on_cuda else "gloo", timeout=datetime.timedelta(seconds=spec.timeout))
-    comm = Comm(group, _default_store(), spec.timeout)
+    exchange_device = torch.device("cuda", torch.cuda.current_device()) if on_cuda else torch.device("cpu")
+    comm = Comm(group, _default_store(), spec.timeout, exchange_device)
     try:
         checked = {**settings, "mode": spec.mode, "target": target.signature(),
                    "data": None if data is None else data.tensors}
