@@ -211,6 +211,8 @@ def main(args: list[str]) -> int:
     parser.add_argument("--quick", action="store_true", help="small sizes (for tests; figures not meaningful)")
     parser.add_argument("--rounds", type=int, help="alternating rounds of the timed configurations")
     parser.add_argument("--json", action="store_true", help="also print the raw figures as JSON")
+    parser.add_argument("--parts", choices=("all", "timing", "memory"), default="all",
+                        help="timing: rows (a)-(c), (e); memory: row (d) (it takes minutes: one step at N = 200,000)")
     parser.add_argument("--worker", help=argparse.SUPPRESS)
     opts = parser.parse_args(args)
     if opts.worker:
@@ -233,10 +235,13 @@ def main(args: list[str]) -> int:
         "pairwise particles": ({"kind": "pairwise", "size": sizes["pairwise"], "steps": steps, "mode": "particles"}, 2),
     }
     raw: dict[str, list[dict]] = {name: [] for name in configs}
-    for _ in range(rounds):
+    for _ in range(rounds if opts.parts != "memory" else 0):
         for name, (config, ranks) in configs.items():
             raw[name].append(run_config(config, ranks))
-    memory = run_config({"kind": "pairwise", "size": sizes["memory"], "steps": 1, "mode": "particles", "warmup": False}, 2)
+    memory = None
+    if opts.parts != "timing":
+        memory = run_config({"kind": "pairwise", "size": sizes["memory"], "steps": 1, "mode": "particles",
+                             "warmup": False}, 2)
     failures = 0
     print(f"{'figure':<62} {'median':>8} {'range':>13} {'floor':>6}  status")
 
@@ -249,15 +254,19 @@ def main(args: list[str]) -> int:
         print(f"{label:<62} {mid:>7.2f}{unit} {spread:>13} {floor:>5.1f}{unit}  {'ok' if ok else 'MISSED'}", flush=True)
 
     n_obs, d, n = sizes["score"]
+    n_p, d_p = sizes["pairwise"]
+    if memory is not None:
+        n_m, d_m = sizes["memory"]
+        row(f"(d) peak RSS per rank, N={n_m} d={d_m} on 2 ranks, GB", [memory["peak_kib"] / 2**20],
+            FLOORS["memory_gb"], unit="", higher_is_better=False)
+        print(f"    one step of 2 ranks took {memory['seconds']:.0f} s")
+    if opts.parts == "memory":
+        return 1 if failures else 0
     for name, tag, what in (("score particles", "a", "particle"), ("score data", "b", "data")):
         ratios = [a["seconds"] / b["seconds"] for a, b in zip(raw["score 1"], raw[name])]
         row(f"({tag}) logistic n_obs={n_obs} d={d} N={n}, {what} sharding, 1/2 ranks", ratios, FLOORS[name])
-    n_p, d_p = sizes["pairwise"]
     ratios = [a["seconds"] / b["seconds"] for a, b in zip(raw["pairwise 1"], raw["pairwise particles"])]
     row(f"(c) pairwise N={n_p} d={d_p}, particle sharding, 1/2 ranks", ratios, FLOORS["pairwise particles"])
-    n_m, d_m = sizes["memory"]
-    row(f"(d) peak RSS per rank, N={n_m} d={d_m} on 2 ranks, GB", [memory["peak_kib"] / 2**20], FLOORS["memory_gb"],
-        unit="", higher_is_better=False)
     for name in configs:
         seconds = ", ".join(f"{r['seconds']:.4f}" for r in raw[name])
         share = statistics.median(r["exchange"] / r["seconds"] for r in raw[name])
