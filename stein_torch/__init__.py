@@ -12,7 +12,7 @@ from ._version import __version__
 from .files import load
 from .model import Latent, ObservedData, SamplerDefaults, Target
 from .race import race
-from .result import PredictiveBands, Result, predictive_interval
+from .result import PredictiveBands, Result, predictive_interval, prior_predictive
 from .samplers import Langevin, RankFailure, Sampler, Sharding, StopRule, langevin, schedules, steppers, svgd
 from .stein import ksd, svgd_direction
 
@@ -34,6 +34,7 @@ __all__ = [
     "langevin",
     "load",
     "predictive_interval",
+    "prior_predictive",
     "race",
     "schedules",
     "steppers",

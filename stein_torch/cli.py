@@ -1,4 +1,4 @@
-"""Command line: ``stein-torch demo``, ``stein-torch run MODEL.py``, ``stein-torch bench``.
+"""Command line: ``stein-torch demo``, ``stein-torch run MODEL.py``, ``stein-torch bench``, ``--version``.
 
 Exit codes: 0 success, 1 the run failed (model error, numerical failure, failing benchmark),
 2 usage error (bad option, missing file, unknown suite), 130 interrupted. Errors are one line on
@@ -53,6 +53,20 @@ _positive_int = _int_at_least(1, "positive")
 _seed = _int_at_least(0, "non-negative")
 
 
+def _version() -> str:
+    from importlib import metadata
+
+    import torch
+
+    from ._version import __version__
+
+    try:
+        arviz = metadata.version("arviz")
+    except metadata.PackageNotFoundError:
+        arviz = "not installed"
+    return f"{PROG} {__version__} (torch {torch.__version__}, arviz {arviz})"
+
+
 def _build_parser() -> _Parser:
     common = argparse.ArgumentParser(add_help=False)
     # SUPPRESS: the flags may come before or after the subcommand without overwriting each other
@@ -65,6 +79,7 @@ def _build_parser() -> _Parser:
         prog=PROG, parents=[common],
         description="Posterior particles from torch log densities by Stein variational gradient descent.",
     )
+    parser.add_argument("--version", action="version", version=_version())
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
 
@@ -76,22 +91,72 @@ def _build_parser() -> _Parser:
     demo.add_argument("--steps", type=_positive_int, default=DEMO_STEPS, help=f"SVGD steps (default: {DEMO_STEPS})")
     demo.add_argument("--seed", type=_seed, default=0, help="random seed (default: 0)")
 
-    run = sub.add_parser("run", parents=[common], help="sample a stein_torch.Target defined in a Python file")
+    _add_run_parser(sub, common)
+
+    from .benchmarks import SUITES
+
+    bench = sub.add_parser(
+        "bench", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter,
+        help="run benchmark suites and print their tables", epilog=_suites_help(SUITES),
+    )
+    bench.add_argument("suites", nargs="*", metavar="SUITE",
+                       help=f"suite names or 'all' (default: core); one of {', '.join(SUITES)}")
+    bench.add_argument("--quick", action="store_true", help="small sizes: a check that the suites run (seconds to a minute)")
+    return parser
+
+
+def _add_run_parser(sub, common) -> None:
+    from .cli_run import METHODS, available_methods
+
+    methods = available_methods()
+    missing = [m for m in METHODS if m not in methods]
+    run = sub.add_parser(
+        "run", parents=[common], help="sample a stein_torch.Target defined in a Python file",
+        description="Sample the stein_torch.Target defined in MODEL.py, print how the run went and the "
+                    "ArviZ summary, and write the InferenceData as NetCDF."
+                    + (f" Not in this installation: --method {', '.join(missing)}." if missing else ""),
+    )
     run.add_argument("model", metavar="MODEL.py", help="Python file that defines a stein_torch.Target")
     run.add_argument("--target", default="target", metavar="NAME", help="variable holding the Target (default: target)")
-    run.add_argument("--particles", type=_positive_int, default=200, help="particles per ensemble (default: 200)")
-    run.add_argument("--steps", type=_positive_int, default=RUN_STEPS, help=f"most SVGD steps (default: {RUN_STEPS})")
-    run.add_argument("--ensembles", type=_positive_int, default=1, help="independent particle sets (default: 1)")
+    run.add_argument("--method", default="svgd", metavar="{" + ",".join(methods) + "}",
+                     help="sampler (default: svgd)")
+    run.add_argument("--particles", type=_positive_int, metavar="N", help="svgd: particles per ensemble (default: 200)")
+    run.add_argument("--ensembles", type=_positive_int, metavar="N",
+                     help="independent particle sets (svgd, default 1) or chains (langevin, nuts; default 4)")
+    run.add_argument("--steps", type=_positive_int, metavar="N",
+                     help=f"svgd: most steps (default: {RUN_STEPS}; the stop rule may end the run earlier)")
+    run.add_argument("--no-stop", action="store_true", help="svgd: run every step (no KSD stop rule)")
+    run.add_argument("--kernel", metavar="SPEC",
+                     help="svgd: kernel, e.g. rbf, imq, matern:1.5, gamma-exp:1, linear:2, weighted-rbf, joined "
+                          "by '+' (default: imq+linear:2)")
+    run.add_argument("--draws", type=_positive_int, metavar="N", help="langevin, nuts: kept draws per chain (default 1000)")
+    run.add_argument("--warmup", type=_positive_int, metavar="N", help="langevin, nuts: warmup steps per chain (default 1000)")
+    run.add_argument("--checkpoint", metavar="FILE", help="write the sampler's state to FILE (every 100 steps, at the end, on Ctrl-C)")
+    run.add_argument("--resume", metavar="FILE", help="continue the run saved in FILE (same model and options)")
     run.add_argument("--seed", type=_seed, default=0, help="random seed (default: 0)")
     run.add_argument("--out", metavar="FILE.nc", help="NetCDF output (default: MODEL.nc in the current folder)")
-    run.add_argument("--ranks", type=_positive_int, default=1,
-                     help="processes sharing the particles, started through torchrun on this machine (default: 1)")
+    run.add_argument("--ranks", type=_positive_int, default=1, metavar="R",
+                     help="svgd: processes sharing the particles, started through torchrun on this machine (default: 1)")
 
-    bench = sub.add_parser("bench", parents=[common], help="run benchmark suites and print their tables")
-    bench.add_argument("suites", nargs="*", metavar="SUITE", help="suite names or 'all' (default: core)")
-    bench.add_argument("--quick", action="store_true", help="small sizes (seconds, for tests)")
-    bench.epilog = "Options a suite defines (e.g. 'bench accuracy --names ... --seeds K') are passed on to it."
-    return parser
+
+def _suites_help(suites: dict) -> str:
+    """The suites and the options each takes, for ``bench --help``."""
+    lines = ["suites (options after the suite name go to that suite):"]
+    for name, module in suites.items():
+        try:
+            parser = importlib.import_module(module).build_parser()
+        except (ImportError, AttributeError):
+            lines.append(f"  {name:<10} (not available in this installation)")
+            continue
+        lines.append(f"  {name:<10} {parser.description or ''}")
+        for action in parser._actions:
+            if action.help in (None, argparse.SUPPRESS) or not action.option_strings or "-h" in action.option_strings:
+                continue
+            flag = action.option_strings[-1]
+            meta = "" if action.nargs == 0 else " " + (action.metavar or action.dest.upper()) + (" ..." if action.nargs == "*" else "")
+            lines.append(f"      {flag + meta:<22} {action.help}")
+    lines.append("examples: stein-torch bench all --quick;  stein-torch bench accuracy --names arK-arK --seeds 6")
+    return "\n".join(lines)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -117,6 +182,11 @@ def main(argv: list[str] | None = None) -> int:
         return exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 2)
     except KeyboardInterrupt as exc:
         return _fail(exc, 130, debug, prefix="interrupted")
+    except BrokenPipeError:  # the reader went away (e.g. `| head`): stop quietly, as shell tools do
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except Exception as exc:  # noqa: BLE001 - one line per failure is the contract of the CLI
         return _fail(exc, 1, debug, prefix=type(exc).__name__)
     finally:
@@ -161,7 +231,8 @@ def _demo(args) -> int:
     start = time.perf_counter()
     run = run_demo(out, particles=args.particles, steps=args.steps, seed=args.seed)
     seconds = time.perf_counter() - start
-    print(f"Kiln drying of oak boards: {args.particles} particles, {args.steps} SVGD steps, {seconds:.1f} s\n")
+    print(f"Kiln drying of oak boards: {args.particles} particles, {run.settings['steps']} SVGD steps "
+          f"(stopped: {run.stop_reason}), {seconds:.1f} s with the MALA check and the figures\n")
     print(run.summary().to_string())
     draws = run.draws
     corr = torch.corrcoef(torch.stack([draws["initial_moisture"].ravel(), draws["drying_rate"].ravel()]))[0, 1]
@@ -169,6 +240,10 @@ def _demo(args) -> int:
     low, high = torch.quantile(days, torch.tensor([0.05, 0.95], dtype=days.dtype)).tolist()
     print(f"\ncorrelation of initial_moisture and drying_rate: {float(corr):+.2f}")
     print(f"day the boards reach {KILN_DRY_PERCENT:g} % moisture: {float(days.mean()):.1f} (90 % interval {low:.1f} to {high:.1f})")
+    worst = max(run.settings["against_mala"].items(), key=lambda item: item[1][0])
+    ratios = [ratio for _, ratio in run.settings["against_mala"].values()]
+    print(f"against MALA (4 x 1000 draws): means differ by at most {worst[1][0]:.2f} MALA sd ({worst[0]}), "
+          f"sd ratios {min(ratios):.2f} to {max(ratios):.2f}")
     print("(an approximation from invented data: check a sample of boards before shipping on it)\n")
     for name, path in run.settings["files"].items():
         print(f"wrote {path}  ({name})")
@@ -180,8 +255,16 @@ def _run(args) -> int:
     _set_threads(args, default=None)
     import stein_torch as st
 
+    from .cli_run import METHODS, available_methods, report, sample
     from .io import save_netcdf
 
+    if args.method not in METHODS:
+        raise UsageError(f"--method: expected one of {', '.join(available_methods())}, got {args.method!r}")
+    if args.method not in available_methods():
+        raise UsageError(
+            f"--method {args.method}: this installation of stein_torch has no st.{METHODS[args.method][0]} yet; "
+            f"choose from {', '.join(available_methods())}"
+        )
     model = Path(args.model)
     if not model.is_file():
         raise UsageError(f"MODEL.py: no such file {str(model)!r}")
@@ -192,23 +275,44 @@ def _run(args) -> int:
         raise UsageError(f"--out: expected a file name, got the folder {str(out)!r}")
     if not (out.parent if str(out.parent) else Path(".")).is_dir():
         raise UsageError(f"--out: the folder {str(out.parent)!r} does not exist")
+    if args.resume is not None and not Path(args.resume).is_file():
+        raise UsageError(f"--resume: no such file {args.resume!r}")
+    if args.kernel is not None:
+        from .cli_run import parse_kernel
+
+        try:
+            parse_kernel(args.kernel)
+        except ValueError as err:
+            raise UsageError(str(err)) from None
     target = _load_target(model, args.target, st.Target)
     from . import launch
 
+    if args.ranks > 1 and "ranks" not in METHODS[args.method][1]:
+        raise UsageError(f"--ranks: --method {args.method} runs in one process; --ranks applies to --method svgd")
     if args.ranks > 1 and not launch.inside_workers():  # start the workers, each running this command
         return launch.start_workers(args.ranks, args.argv, getattr(args, "threads", None))
     if launch.inside_workers() and launch.worker_count() != args.ranks:
         raise UsageError(f"--ranks {args.ranks}: torchrun started {launch.worker_count()} workers; give the same number")
+    options = {k: getattr(args, k) for k in ("particles", "ensembles", "steps", "no_stop", "kernel", "draws", "warmup",
+                                             "checkpoint", "resume", "seed")}
+    options["ranks"] = args.ranks if args.ranks > 1 else None
     start = time.perf_counter()
-    run = st.svgd(target, particles=args.particles, steps=args.steps, ensembles=args.ensembles, seed=args.seed,
-                  distributed="particles" if args.ranks > 1 else None)
+    try:
+        run, python_warnings = sample(target, args.method, options, progress=sys.stderr.isatty())
+    except ValueError as err:
+        if str(err).startswith("--method"):
+            raise UsageError(str(err)) from None
+        raise
     seconds = time.perf_counter() - start
     if launch.worker_rank() != 0:  # rank 0 prints and writes; the others hold the same particles
         return 0
-    print(
-        f"{model.name}: {args.ensembles} x {args.particles} particles, {args.steps} SVGD steps, "
-        f"{seconds:.1f} s" + (f" on {args.ranks} ranks" if args.ranks > 1 else "") + "\n"
-    )
+    chains, draws = run.particles.shape[:2]
+    unit = "particles" if run.method == "svgd" else "draws"
+    ranks = f" on {args.ranks} ranks" if args.ranks > 1 else ""
+    print(f"{model.name}: {run.method}, {chains} x {draws} {unit}, {seconds:.1f} s{ranks}")
+    for line in report(run, python_warnings):
+        print(line)
+    print()
     print(run.summary().to_string())
     save_netcdf(run.to_inference_data(), out)
     print(f"\nwrote {out}")

@@ -13,6 +13,11 @@ that started wetter must have dried faster to fit the same readings: the posteri
 (initial_moisture, drying_rate) is strongly correlated, which the pair plot shows. A derived
 quantity answers the mill's question: the day the boards reach 12 % moisture.
 
+The readings are described by a distribution (log-normal around the drying curve), so the same
+definition scores them and simulates new ones: the InferenceData holds a ``posterior_predictive``
+group for ``arviz.plot_ppc``. The particles are checked against a Metropolis-adjusted Langevin run on
+the same model (``comparison.png``).
+
 Use from the shell with ``stein-torch demo`` or from Python::
 
     from stein_torch.demo import demo_target, run_demo
@@ -27,20 +32,22 @@ from typing import Callable
 
 import numpy as np
 import torch
-from torch.distributions import HalfNormal, LogNormal, Normal, constraints
+from torch.distributions import HalfNormal, LogNormal, constraints
 
 from .io import save_figure, save_netcdf
 from .model import Latent, Target
 from .result import Result
-from .samplers import svgd
+from .samplers import langevin, svgd
 
-__all__ = ["kiln_data", "demo_target", "run_demo", "days_to_moisture", "DEMO_STEPS", "KILN_DRY_PERCENT"]
+__all__ = ["kiln_data", "demo_target", "run_demo", "days_to_moisture", "DEMO_STEPS", "KILN_DRY_PERCENT", "LABELS"]
 
 DATA_SEED = 1729  # the invented boards; fixed so every run sees the same data
 BOARDS = 28
 DEMO_STEPS = 300
 KILN_DRY_PERCENT = 12.0  # the moisture the mill ships at
 _TRUE = {"initial_moisture": 62.0, "drying_rate": 0.085, "noise_sd": 0.06}  # used only to invent data
+LABELS = {"initial_moisture": "initial moisture (% of dry weight)", "drying_rate": "drying rate (per day)",
+          "noise_sd": "noise sd (log scale)"}
 
 
 def kiln_data() -> dict[str, torch.Tensor]:
@@ -63,7 +70,6 @@ def demo_target(data: dict[str, torch.Tensor] | None = None) -> Target:
         ``day`` and ``moisture`` tensors of shape (boards,); default :func:`kiln_data`.
     """
     data = kiln_data() if data is None else data
-    day, log_moisture = data["day"], torch.log(data["moisture"])
 
     def f64(value: float) -> torch.Tensor:  # Python floats would make float32 parameters
         return torch.tensor(value, dtype=torch.float64)
@@ -72,25 +78,24 @@ def demo_target(data: dict[str, torch.Tensor] | None = None) -> Target:
     prior_rate = LogNormal(f64(math.log(0.1)), f64(0.75))  # per day
     prior_noise = HalfNormal(f64(0.2))  # meter and board-to-board scatter on the log scale
 
-    def log_joint(p: dict[str, torch.Tensor]) -> torch.Tensor:
+    def log_prior(p: dict[str, torch.Tensor]) -> torch.Tensor:
         # p[name] has shape (...,): a batch of parameter values; returns (...,)
-        initial, rate, noise_sd = p["initial_moisture"], p["drying_rate"], p["noise_sd"]
-        expected = torch.log(initial)[..., None] - rate[..., None] * day  # (..., boards)
-        log_lik = Normal(expected, noise_sd[..., None]).log_prob(log_moisture).sum(-1)
-        return (
-            prior_initial.log_prob(initial)
-            + prior_rate.log_prob(rate)
-            + prior_noise.log_prob(noise_sd)
-            + log_lik
-        )
+        return (prior_initial.log_prob(p["initial_moisture"]) + prior_rate.log_prob(p["drying_rate"])
+                + prior_noise.log_prob(p["noise_sd"]))
+
+    def readings(p: dict[str, torch.Tensor], d: dict[str, torch.Tensor]) -> LogNormal:
+        # the readings' distribution, batch shape (..., boards): scores them and simulates new ones
+        expected = torch.log(p["initial_moisture"])[..., None] - p["drying_rate"][..., None] * d["day"]
+        return LogNormal(expected, p["noise_sd"][..., None])
 
     return Target(
-        log_joint,
+        log_prior,
         latents={
             "initial_moisture": Latent(support=constraints.positive),
             "drying_rate": Latent(support=constraints.positive),
             "noise_sd": Latent(support=constraints.positive),
         },
+        log_likelihood=readings, data={"day": data["day"], "moisture": data["moisture"]}, observed="moisture",
     )
 
 
@@ -106,32 +111,41 @@ def run_demo(
     seed: int = 0,
     progress: bool | None = None,
 ) -> Result:
-    """Sample the kiln-drying posterior and write ``posterior.nc``, ``pair_plot.png`` and
-    ``trace_figures.png`` into ``out_dir`` (created if needed).
+    """Sample the kiln-drying posterior, check it against MALA, and write ``posterior.nc``,
+    ``pair_plot.png``, ``history.png`` and ``comparison.png`` into ``out_dir`` (created if needed).
 
     Returns
     -------
     Result
-        The run; its files are listed in ``result.settings["files"]``.
+        The run; its files are listed in ``result.settings["files"]`` and the comparison with MALA
+        (per parameter: mean difference in MALA sd, sd ratio) in ``result.settings["against_mala"]``.
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    data = kiln_data()
-    run = svgd(demo_target(data), particles=particles, steps=steps, seed=seed, progress=progress)
-    idata = run.to_inference_data(
-        observed_data={"moisture": data["moisture"].numpy()},
-        constant_data={"day": data["day"].numpy()},
-    )
-    for group in ("observed_data", "constant_data"):  # name the per-board dimension
-        dataset = idata[group]
-        idata[group] = dataset.rename({dim: "board" for dim in dataset.dims})
+    target = demo_target(kiln_data())
+    run = svgd(target, particles=particles, steps=steps, seed=seed, progress=progress)
+    idata = run.to_inference_data(dims={"moisture": ["board"], "day": ["board"]})
+    mala = langevin(target, chains=4, draws=1000, warmup=1000, seed=seed, progress=progress)
+    figures = compare_draws(run.draws, mala.draws)
     files = {
         "posterior": save_netcdf(idata, out / "posterior.nc"),
-        "pair_plot": _save_plot(lambda: _pair_plot(idata), out / "pair_plot.png"),
-        "trace_figures": _save_plot(lambda: trace_figure(run.history), out / "trace_figures.png"),
+        "pair_plot": _save_plot(lambda: _pair_plot(idata, run.draws), out / "pair_plot.png"),
+        "history": _save_plot(run.plot_history, out / "history.png"),
+        "comparison": _save_plot(lambda: comparison_figure(run.draws, mala.draws, figures), out / "comparison.png"),
     }
     run.settings["files"] = {k: str(v) for k, v in files.items()}
+    run.settings["against_mala"] = figures
     return run
+
+
+def compare_draws(particles: dict, reference: dict) -> dict[str, tuple[float, float]]:
+    """Per parameter: (|mean difference| / reference sd, sd / reference sd), draws pooled."""
+    out = {}
+    for name, ref in reference.items():
+        ref, got = ref.reshape(-1).double(), particles[name].reshape(-1).double()
+        sd = float(ref.std())
+        out[name] = (abs(float(got.mean() - ref.mean())) / sd, float(got.std()) / sd)
+    return out
 
 
 def _save_plot(make: Callable, path: Path) -> Path:
@@ -144,37 +158,34 @@ def _save_plot(make: Callable, path: Path) -> Path:
         plt.close(figure)
 
 
-def _pair_plot(idata):
+def _pair_plot(idata, draws: dict):
     import arviz as az
 
     axes = az.plot_pair(idata, kind="scatter", marginals=True, scatter_kwargs={"alpha": 0.5}, figsize=(7, 7))
     figure = np.asarray(axes).ravel()[0].figure
-    figure.suptitle("Kiln drying: posterior particles (correlation of initial moisture and rate)")
+    flat = [draws[k].reshape(-1) for k in ("initial_moisture", "drying_rate")]
+    corr = float(torch.corrcoef(torch.stack(flat))[0, 1])
+    count = draws["initial_moisture"].numel()
+    figure.suptitle(f"Kiln drying: {count} posterior particles\n"
+                    f"correlation of initial moisture and drying rate {corr:+.2f}")
     return figure
 
 
-def trace_figure(trace: dict[str, np.ndarray]):
-    """Per-step figures of a run: mean log density, step size, direction size (rms of phi) and the
-    kernel bandwidth, one panel each. Returns a matplotlib Figure."""
+def comparison_figure(particles: dict, reference: dict, figures: dict):
+    """SVGD particles against MALA draws, one panel per parameter, titles giving the differences."""
     import matplotlib.pyplot as plt
 
-    panels = [
-        ("lp", "mean log density"),
-        ("step_size", "step size"),
-        ("phi_rms", "direction size (rms of phi)"),
-        ("bandwidth", "kernel bandwidth"),
-    ]
-    figure, axes = plt.subplots(2, 2, figsize=(9, 6), sharex=True)
-    for ax, (key, title) in zip(axes.ravel(), panels):
-        values = np.asarray(trace.get(key, []), dtype=float)
-        if values.size:
-            ax.plot(np.arange(1, len(values) + 1), values.reshape(len(values), -1))
-            if key == "phi_rms" and np.all(values > 0):
-                ax.set_yscale("log")
-        else:
-            ax.text(0.5, 0.5, "not recorded", ha="center", va="center", transform=ax.transAxes)
-        ax.set_title(title)
-    for ax in axes[-1]:
-        ax.set_xlabel("step")
-    figure.tight_layout()
+    names = list(reference)
+    figure, axes = plt.subplots(1, len(names), figsize=(4 * len(names), 3.6), layout="constrained")
+    for ax, name in zip(np.atleast_1d(axes), names):
+        ref, got = reference[name].reshape(-1).numpy(), particles[name].reshape(-1).numpy()
+        bins = np.linspace(min(ref.min(), got.min()), max(ref.max(), got.max()), 30)
+        ax.hist(ref, bins=bins, density=True, alpha=0.45, color="grey", label=f"MALA ({ref.size} draws)")
+        ax.hist(got, bins=bins, density=True, histtype="step", lw=1.6, color="tab:blue", label=f"SVGD ({got.size} particles)")
+        shift, ratio = figures[name]
+        ax.set_title(f"means differ by {shift:.2f} MALA sd\nsd ratio SVGD / MALA {ratio:.2f}", fontsize=10)
+        ax.set_xlabel(LABELS.get(name, name))
+    np.atleast_1d(axes)[0].set_ylabel("density")
+    np.atleast_1d(axes)[0].legend(fontsize="small")
+    figure.suptitle("Kiln drying: SVGD particles against a Metropolis-adjusted Langevin run")
     return figure

@@ -19,6 +19,7 @@ Figures (every row and every checkpoint):
 
 from __future__ import annotations
 
+import re
 import time
 from typing import Callable, Mapping, Sequence
 
@@ -33,9 +34,12 @@ from .samplers.precondition import LAPLACE_MAX_DIM, Affine, laplace_whitening
 from .samplers.svgd import DEFAULT_STEPS
 from .stein import ksd as kernel_stein_discrepancy
 
-__all__ = ["race", "plot_race", "accuracy", "TOLERANCE"]
+__all__ = ["race", "plot_race", "accuracy", "reference_draws", "TOLERANCE"]
 
 TOLERANCE = {"mean_error": 0.1, "sd_ratio_min": 0.9, "sd_ratio_max": 1.1}
+METRIC_LABELS = {"w1": "W1 / reference sd (mean over parameters)", "mean_error": "largest |mean error| / reference sd",
+                 "ksd": "KSD (whitened coordinates)", "sd_ratio_min": "smallest sd / reference sd",
+                 "sd_ratio_max": "largest sd / reference sd"}
 SVGD_OPTIONS = {"particles", "ensembles", "kernel", "stepper", "steps", "stop", "precondition", "dtype", "init"}
 LANGEVIN_OPTIONS = {"chains", "draws", "warmup", "step_size", "precondition", "dtype", "init"}
 
@@ -70,6 +74,60 @@ def accuracy(draws: Mapping[str, np.ndarray], reference: Mapping[str, np.ndarray
         distances.extend(wasserstein_distance(got2[:, i], ref2[:, i]) / ref_sd[i] for i in range(ref2.shape[1]))
     return {"mean_error": float(np.max(errors)), "sd_ratio_min": float(np.min(ratios)),
             "sd_ratio_max": float(np.max(ratios)), "w1": float(np.mean(distances))}
+
+
+_FLAT_NAME = re.compile(r"(\w+)\[(\d+(?:\s*,\s*\d+)*)\]")
+
+
+def reference_draws(reference) -> dict[str, np.ndarray]:
+    """Reference draws as name -> float64 array (n_draws, *shape).
+
+    Accepts a dict of arrays (n_draws, *shape), a dict of columns under flattened 1-based names
+    (``"beta[1]"``, ``"a[1,2]"``), or an :class:`arviz.InferenceData` (its ``posterior`` group,
+    chains pooled).
+    """
+    if hasattr(reference, "groups") and hasattr(reference, "posterior"):  # arviz.InferenceData
+        posterior = reference.posterior
+        reference = {k: v.values.reshape(-1, *v.shape[2:]) for k, v in posterior.data_vars.items()}
+    if not isinstance(reference, Mapping) or not reference:
+        raise TypeError(
+            "race: reference must be an arviz.InferenceData or a non-empty dict name -> array (n_draws, *shape), "
+            f"got {type(reference).__qualname__}"
+        )
+    out: dict[str, np.ndarray] = {}
+    elements: dict[str, dict[tuple, np.ndarray]] = {}
+    for key, value in reference.items():
+        array = np.asarray(value, dtype=np.float64)
+        match = _FLAT_NAME.fullmatch(str(key).strip())
+        if match:
+            index = tuple(int(i) for i in match.group(2).split(","))
+            if min(index) < 1 or array.ndim != 1:
+                raise ValueError(f"race: reference[{key!r}]: flattened names are 1-based columns of draws (n_draws,); "
+                                 f"got index {index} and shape {array.shape}")
+            elements.setdefault(match.group(1), {})[index] = array
+        else:
+            out[str(key)] = array
+    for base, columns in elements.items():
+        if base in out:
+            raise ValueError(f"race: reference has both {base!r} and flattened names {base}[...]")
+        ranks = {len(i) for i in columns}
+        shape = tuple(max(i[a] for i in columns) for a in range(ranks.pop()))
+        if ranks:
+            raise ValueError(f"race: reference names {base}[...] mix different numbers of indices")
+        missing = [i for i in np.ndindex(*shape) if tuple(a + 1 for a in i) not in columns]
+        if missing:
+            first = ",".join(str(a + 1) for a in missing[0])
+            raise ValueError(f"race: reference lacks {base}[{first}] ({len(missing)} of {int(np.prod(shape))} elements "
+                             f"of {base}, shape {shape} from the largest 1-based indices)")
+        lengths = {c.shape[0] for c in columns.values()}
+        if len(lengths) != 1:
+            raise ValueError(f"race: reference columns {base}[...] have different numbers of draws {sorted(lengths)}")
+        stacked = np.stack([columns[tuple(a + 1 for a in i)] for i in np.ndindex(*shape)], axis=-1)
+        out[base] = stacked.reshape(stacked.shape[0], *shape)
+    for k, v in out.items():
+        if v.ndim < 1 or v.shape[0] < 2:
+            raise ValueError(f"race: reference[{k!r}] must have shape (n_draws >= 2, *shape), got {v.shape}")
+    return out
 
 
 def _within_tolerance(figures: Mapping[str, float]) -> bool:
@@ -199,9 +257,11 @@ def race(
     Parameters
     ----------
     target : Target
-    reference : dict of str to array of shape (n_draws, *shape), optional
+    reference : dict of str to array, or arviz.InferenceData, optional
         Trusted draws (e.g. a long MCMC run) on the constrained scale, by parameter name (or by the
-        names ``derived`` returns).
+        names ``derived`` returns): arrays of shape (n_draws, *shape); or one column per element
+        under flattened, 1-based names such as ``"beta[1]"``, ``"beta[2]"`` (``"a[1,2]"`` for
+        matrices); or an InferenceData whose ``posterior`` group holds them (chains pooled).
     budget : int, optional
         Score evaluations per method (particles x steps for SVGD, with the stop rule off unless
         given; chains x (1 + warmup + draws) for Langevin, warmup = half). None: each method's own
@@ -240,12 +300,7 @@ def race(
         check_int(budget, "race: budget")
     check_int(checkpoints, "race: checkpoints")
     if reference is not None:
-        if not isinstance(reference, Mapping) or not reference:
-            raise TypeError(f"race: reference must be a dict name -> array (n_draws, *shape), got {type(reference).__qualname__}")
-        reference = {k: np.asarray(v, dtype=np.float64) for k, v in reference.items()}
-        for k, v in reference.items():
-            if v.ndim < 1 or v.shape[0] < 2:
-                raise ValueError(f"race: reference[{k!r}] must have shape (n_draws >= 2, *shape), got {v.shape}")
+        reference = reference_draws(reference)
     specs = _parse_methods(methods)
     meter = _Meter(target, reference, derived, ksd_points, _common_affine(target))
     rows = []
@@ -303,7 +358,7 @@ def plot_race(rows: list[dict], metric: str = "w1", ax=None):
     if metric not in rows[0]["path"][0]:
         raise ValueError(f"plot_race: metric must be one of {sorted(k for k in rows[0]['path'][0] if k != 'points')}, got {metric!r}")
     if ax is None:
-        _, ax = plt.subplots(figsize=(5, 3.5))
+        _, ax = plt.subplots(figsize=(5.5, 3.8), layout="constrained")  # room for the axis labels
     for row in rows:
         x = [p["grad_evals"] for p in row["path"]]
         y = [p[metric] for p in row["path"]]
@@ -314,7 +369,7 @@ def plot_race(rows: list[dict], metric: str = "w1", ax=None):
     if metric == "mean_error":
         ax.axhline(TOLERANCE["mean_error"], color="grey", lw=0.8, ls="--")
     ax.set_xlabel("score evaluations")
-    ax.set_ylabel(metric)
+    ax.set_ylabel(METRIC_LABELS.get(metric, metric))
     ax.legend()
     return ax
 

@@ -1,16 +1,12 @@
 """MALA baseline on the eight posteriordb reference posteriors (slow: about a minute per posterior).
 
-Source: posteriordb reference posteriors (posteriordb, BSD-3), reference draws in ../shared/posteriors
-(10 NUTS chains x 1000 draws). Floor: max over parameters of |mean - ref mean| / ref sd <= 0.1 and every
+Source: posteriordb reference posteriors (posteriordb, BSD-3), reference draws vendored in
+shared/posteriordb (10 NUTS chains x 1000 draws). Floor: max over parameters of |mean - ref mean| / ref sd <= 0.1 and every
 sd / ref sd in [0.9, 1.1] for `st.langevin(target, chains=4, draws=1000, warmup=1000, seed=0)` on at
 least six. The default SVGD run is checked on all eight in tests/test_reference_posteriors.py.
-Set STEIN_TORCH_POSTERIORS to read the posteriors from another folder.
 """
 
 from __future__ import annotations
-
-import os
-import pathlib
 
 import pytest
 
@@ -22,9 +18,6 @@ except ImportError:  # tests/ collected as a package
     from tests import posteriordb as pdb
 
 pytestmark = pytest.mark.slow
-
-if os.environ.get("STEIN_TORCH_POSTERIORS"):
-    pdb.POSTERIORS_DIR = pathlib.Path(os.environ["STEIN_TORCH_POSTERIORS"]).resolve()
 
 MEAN_ERROR, SD_LOW, SD_HIGH = 0.1, 0.9, 1.1
 

@@ -41,15 +41,16 @@ def _one_line_error(captured) -> str:
 
 
 # ------------------------------------------------------------------------------------------- demo
-def test_demo_command_writes_netcdf_and_two_pngs(tmp_path, capsys):
+def test_demo_command_writes_netcdf_and_three_pngs(tmp_path, capsys):
     out = tmp_path / "demo"
     code = main(["demo", "--out", str(out), "--particles", "40", "--steps", "15", "--seed", "3"])
     printed = capsys.readouterr().out
     assert code == 0
     for name in NAMES:  # the ArviZ summary table lists every parameter
         assert name in printed
-    assert {p.name for p in out.iterdir()} == {"posterior.nc", "pair_plot.png", "trace_figures.png"}
-    for png in ("pair_plot.png", "trace_figures.png"):
+    assert {p.name for p in out.iterdir()} == {"posterior.nc", "pair_plot.png", "history.png", "comparison.png"}
+    assert "against MALA" in printed and "(stopped: " in printed
+    for png in ("pair_plot.png", "history.png", "comparison.png"):
         assert (out / png).read_bytes()[:8] == PNG_SIGNATURE
     # NetCDF (Unidata standard, via ArviZ): 1 chain (ensemble) x 40 draws (particles) per parameter
     idata = az.from_netcdf(out / "posterior.nc")
@@ -132,14 +133,14 @@ def test_demo_target_log_density_matches_scipy():
     constrained, log_jac = target.constrain(z)
     got = (target.log_prob(z) - log_jac).numpy()  # log_prob includes the log-Jacobian
     data = kiln_data()
-    day, log_y = data["day"].numpy(), np.log(data["moisture"].numpy())
+    day, moisture = data["day"].numpy(), data["moisture"].numpy()
     for b in range(2):
         m0, rate, sd = (float(constrained[k][b]) for k in NAMES)
-        want = (  # scipy.stats densities of the documented model
+        want = (  # scipy.stats densities of the documented model: readings log-normal around the curve
             stats.lognorm.logpdf(m0, s=0.5, scale=50.0)
             + stats.lognorm.logpdf(rate, s=0.75, scale=0.1)
             + stats.halfnorm.logpdf(sd, scale=0.2)
-            + stats.norm.logpdf(log_y, loc=np.log(m0) - rate * day, scale=sd).sum()
+            + stats.lognorm.logpdf(moisture, s=sd, scale=m0 * np.exp(-rate * day)).sum()
         )
         assert got[b] == pytest.approx(want, rel=1e-10)
 

@@ -1,7 +1,7 @@
 """The notebooks run from top to bottom without error (executed by nbclient on a fresh kernel).
 
-Each runs its invented scenario with real sampling (about 20 s each on a 2-core machine, 42 s for
-both measured). Checks: stored with outputs cleared; every cell runs; the figures they print agree
+Each runs its invented scenario with real sampling (20 to 40 s each on a 2-core machine). Checks:
+stored with outputs cleared; every cell runs; the figures they print agree
 with the values the invented data were generated with (the generating values are the source).
 """
 
@@ -47,3 +47,18 @@ def test_bayesian_network(monkeypatch):
     noise, covered = float(found.group(1)), float(found.group(2))
     assert 0.18 < noise < 0.33  # generated with 0.25 (120 points: a few tenths of relative error)
     assert 0.8 <= covered <= 0.99  # nominal 0.9 on the fitted points (common practice: in-sample bands)
+
+
+def test_predictive_checks(monkeypatch):
+    printed = run_notebook("predictive_checks.ipynb", monkeypatch)
+    found = re.search(r"slope: ([0-9.]+) \+/- ([0-9.]+)", printed)
+    estimate, sd = float(found.group(1)), float(found.group(2))
+    assert abs(estimate - 1.1) < 3 * sd  # generated with 1.1 kWh per sunshine hour (the notebook's own data)
+    # scipy.stats.kstest in the notebook: LOO-PIT of the model the data come from is close to uniform
+    assert float(re.search(r"per-building model: p = ([0-9.]+)", printed).group(1)) > 0.05
+    # the building-level check rejects the shared level and not the model the data come from
+    assert "per-building model: building p-values" in printed and "outside [0.025, 0.975]: 0 of 8" in printed
+    outside = int(re.search(r"shared-level model: building p-values .* outside \[0.025, 0.975\]: (\d) of 8", printed).group(1))
+    assert outside >= 3
+    for group in ("posterior_predictive", "prior_predictive", "prior"):
+        assert f"'{group}'" in printed

@@ -1,6 +1,6 @@
-"""Validate the torch models in ``tests/posteriordb.py`` against posteriordb reference draws.
+"""Validate the torch models (``stein_torch/benchmarks/reference_models.py``) against posteriordb reference draws.
 
-Check used (Stein identity, see ../shared/posteriors/README.md): for a correct log-density on the
+Check used (Stein identity, see shared/posteriordb/README.md): for a correct log-density on the
 unconstrained scale, log-Jacobian included, E_p[grad_z log p(z)] = 0, so the mean score over the
 reference draws mapped to z must be zero up to Monte-Carlo error. Needs no sampler.
 """
@@ -151,15 +151,3 @@ def test_compare_moments_of_reference_against_itself():
         pdb.compare_moments({k: v for k, v in reference.items() if k != "theta"}, name)
     with pytest.raises(ValueError, match="shape"):
         pdb.compare_moments({**reference, "theta": reference["theta"][:, :3]}, name)
-
-
-def test_missing_folder_skips_locally_and_fails_under_ci(monkeypatch, tmp_path):
-    # Source: ../shared/posteriors/README.md — tests needing the folder skip with a reason when it is
-    # absent, except under CI=true, where a missing folder is a failure.
-    monkeypatch.setattr(pdb, "POSTERIORS_DIR", tmp_path / "absent")
-    monkeypatch.delenv("CI", raising=False)
-    with pytest.raises(pytest.skip.Exception, match="absent"):
-        pdb.require_posteriors()
-    monkeypatch.setenv("CI", "true")
-    with pytest.raises(pytest.fail.Exception, match="absent"):
-        pdb.require_posteriors()

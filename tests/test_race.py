@@ -93,3 +93,50 @@ def test_bad_input_is_named():
         st.race(t, {"x": np.zeros(1)}, budget=100)
     with pytest.raises(ValueError, match="metric"):
         plot_race([{"path": [{"grad_evals": 1, "ksd": 1.0, "points": 1}]}], metric="rmse")
+
+
+def test_reference_as_flattened_names_or_inference_data_equals_the_arrays():
+    # Source: posteriordb reference posterior kidiq-kidscore_momhsiq (posteriordb, BSD-3), whose draws
+    # come as columns named beta[1], beta[2], beta[3] (1-based) per chain, as reference draws usually do
+    import json
+    import zipfile
+
+    import arviz as az
+
+    from stein_torch.benchmarks import reference_data, reference_models
+    from stein_torch.race import reference_draws
+
+    name = "kidiq-kidscore_momhsiq"
+    path = reference_data.locate() / name / "reference_draws.json.zip"
+    with zipfile.ZipFile(path) as archive:
+        chains = json.loads(archive.read(archive.namelist()[0]))
+    columns = {k: np.concatenate([c[k] for c in chains]) for k in chains[0]}
+    assert "beta[1]" in columns
+    arrays = reference_data.load_reference(name)
+    flat = reference_draws(columns)
+    assert sorted(flat) == sorted(arrays)
+    for k in arrays:
+        np.testing.assert_array_equal(flat[k], arrays[k])
+    idata = az.from_dict(posterior={k: v.reshape(10, 1000, *v.shape[1:]) for k, v in arrays.items()})
+    for k, v in reference_draws(idata).items():
+        np.testing.assert_array_equal(v, arrays[k])
+    model = reference_models.model(name)
+    target = st.Target(model.log_joint, latents={k: st.Latent(s, c) for k, (s, c) in model.params.items()})
+    options = dict(budget=3000, checkpoints=2, methods={"svgd": {"particles": 50}})
+    by_columns = st.race(target, columns, **options)[0]
+    by_idata = st.race(target, idata, **options)[0]
+    for key in ("mean_error", "sd_ratio_min", "sd_ratio_max", "w1"):
+        assert by_columns[key] == by_idata[key]
+    assert by_columns["mean_error"] < 0.5  # a short run, but on the right posterior
+
+
+def test_flattened_names_with_gaps_or_zero_are_refused():
+    from stein_torch.race import reference_draws
+
+    draws = np.zeros(10)
+    with pytest.raises(ValueError, match=r"lacks b\[2\]"):
+        reference_draws({"b[1]": draws, "b[3]": draws})
+    with pytest.raises(ValueError, match="1-based"):
+        reference_draws({"b[0]": draws})
+    matrix = reference_draws({f"a[{i},{j}]": draws + 10 * i + j for i in (1, 2) for j in (1, 2, 3)})
+    assert matrix["a"].shape == (10, 2, 3) and matrix["a"][0, 1, 2] == 23  # a[2,3] at 0-based [1, 2]

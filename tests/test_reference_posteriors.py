@@ -2,7 +2,7 @@
 
 Floor (issue "Core engine"): with ``st.svgd(target, particles=200, seed=0)`` and otherwise
 defaults, every parameter's mean within 0.1 reference sd and sd within 10% of the reference.
-Source: posteriordb reference posteriors (posteriordb, BSD-3), read from ../shared/posteriors/.
+Source: posteriordb reference posteriors (posteriordb, BSD-3), vendored in shared/posteriordb.
 Four run in the default suite (including eight_schools_noncentered and diamonds); the other four are
 marked slow.
 """

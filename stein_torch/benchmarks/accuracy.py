@@ -1,6 +1,6 @@
 """Accuracy suite: default SVGD and MALA on the eight posteriordb reference posteriors.
 
-    stein-torch bench accuracy [--names NAME ...] [--posteriors DIR] [--seed 0] [--threads N]
+    stein-torch bench accuracy [--names NAME ...] [--posteriors DIR] [--seed 0] [--seeds K] [--quick]
 
 For each posterior it runs ``st.svgd(target, particles=200, seed=0)`` (default kernel, stepper and
 stop rule) and ``st.langevin(target, chains=4, draws=1000, warmup=1000, seed=0)`` through
@@ -19,60 +19,72 @@ Two more lines per posterior put the tolerance in proportion:
   SVGD meets it only because its particles are spread more evenly than random draws.
 - ``seeds`` (with ``--seeds K``): SVGD at seeds 0..K-1, how many meet the tolerance.
 
-The torch models of the posteriors live in ``tests/posteriordb.py`` of a source checkout (beside the
-package); the data and reference draws in ``../shared/posteriors`` beside the checkout, or in the
-folder given by ``--posteriors`` or the environment variable ``STEIN_TORCH_POSTERIORS``.
+``--quick`` runs SVGD only, with 50 particles and at most 60 steps, on two posteriors: a check that the
+suite runs (its figures mean nothing, and it always exits 0 when it ran).
+
+The torch models are in :mod:`stein_torch.benchmarks.reference_models`; the data and reference draws
+are read by :mod:`stein_torch.benchmarks.reference_data` from ``--posteriors DIR``, else
+``$STEIN_TORCH_POSTERIORS``, else the repository's ``shared/posteriordb`` beside the package (a source
+checkout or editable install), else ``shared/posteriordb`` in the current folder. Every file is checked
+against the SHA-256 sums recorded at vendoring; a missing or damaged file ends the suite with a message
+naming it (exit status 2).
 """
 
 from __future__ import annotations
 
 import argparse
-import importlib.util
-import os
-import pathlib
 import sys
 
 import stein_torch as st
 from stein_torch.race import TOLERANCE
 
-__all__ = ["main"]
+from . import reference_data, reference_models
 
-MODELS_FILE = pathlib.Path(__file__).resolve().parents[2] / "tests" / "posteriordb.py"
+__all__ = ["main", "build_parser"]
+
 MALA_NEEDED = 6
+QUICK_NAMES = ["kidiq-kidscore_momhsiq", "eight_schools-eight_schools_noncentered"]
 
 
-def load_models(posteriors: str | None):
-    """Import tests/posteriordb.py by path; point it at the reference folder."""
-    if not MODELS_FILE.is_file():
-        raise SystemExit(
-            f"bench accuracy: the reference models ({MODELS_FILE}) are not installed; run it from a source "
-            "checkout of stein_torch (the tests folder beside the package)"
-        )
-    spec = importlib.util.spec_from_file_location("_stein_torch_posteriordb", MODELS_FILE)
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module  # dataclasses look their module up while the file runs
-    spec.loader.exec_module(module)
-    folder = posteriors or os.environ.get("STEIN_TORCH_POSTERIORS")
-    if folder:
-        module.POSTERIORS_DIR = pathlib.Path(folder).resolve()
-    missing = [n for n in module.NAMES if not (module.POSTERIORS_DIR / n / "reference_draws.json.zip").is_file()]
-    if missing:
-        raise SystemExit(
-            f"bench accuracy: reference posteriors not found under {module.POSTERIORS_DIR} (missing {missing}); "
-            "pass --posteriors DIR or set STEIN_TORCH_POSTERIORS"
-        )
-    return module
+class _Posteriors:
+    """The reference posteriors of one folder: models, reference draws and moments."""
+
+    NAMES = reference_data.NAMES
+
+    def __init__(self, folder):
+        self.folder = reference_data.verify(folder)
+
+    def model(self, name):
+        return reference_models.model(name, self.folder)
+
+    def load_reference(self, name):
+        return reference_data.load_reference(name, self.folder)
+
+    def compare_moments(self, draws, name):
+        return reference_data.compare_moments(draws, name, self.folder)
+
+
+def load_models(posteriors: str | None) -> _Posteriors:
+    """The reference posteriors (see the module docstring for where they are looked for)."""
+    try:
+        return _Posteriors(posteriors)
+    except reference_data.ReferenceDataError as err:
+        print(f"stein-torch bench accuracy: {err}", file=sys.stderr)
+        raise SystemExit(2) from None
 
 
 def target_of(model) -> st.Target:
     return st.Target(model.log_joint, latents={k: st.Latent(tuple(s), c) for k, (s, c) in model.params.items()})
 
 
-def run_one(pdb, name: str, seed: int) -> list[dict]:
+def run_one(pdb, name: str, seed: int, quick: bool = False) -> list[dict]:
     model = pdb.model(name)
     methods = {"svgd": {"method": "svgd", "particles": 200},
                "mala": {"method": "mala", "chains": 4, "draws": 1000, "warmup": 1000}}
-    return st.race(target_of(model), pdb.load_reference(name), methods=methods, derived=model.derived, seed=seed)
+    if quick:
+        methods = {"svgd": {"method": "svgd", "particles": 50, "steps": 60}}
+    return st.race(target_of(model), pdb.load_reference(name), methods=methods, derived=model.derived, seed=seed,
+                   checkpoints=5 if quick else 20)
 
 
 EXACT_SUBSETS = 400  # random 200-draw subsets of the reference behind the "exact" line
@@ -114,15 +126,24 @@ def _fmt(value, spec):
     return "-" if value is None else format(value, spec)
 
 
-def main(args: list[str] | None = None) -> int:
+def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="stein-torch bench accuracy", description=__doc__.splitlines()[0])
-    parser.add_argument("--names", nargs="*", default=None, help="posteriors to run (default: all eight)")
-    parser.add_argument("--posteriors", default=None, help="folder of the posteriordb reference posteriors")
-    parser.add_argument("--seed", type=int, default=0)
-    parser.add_argument("--seeds", type=int, default=0,
+    parser.add_argument("--names", nargs="*", default=None, metavar="NAME",
+                        help="posteriors to run (default: all eight)")
+    parser.add_argument("--posteriors", default=None, metavar="DIR",
+                        help="folder of the reference posteriors (default: $STEIN_TORCH_POSTERIORS, else shared/posteriordb)")
+    parser.add_argument("--seed", type=int, default=0, help="seed of every run (default 0)")
+    parser.add_argument("--seeds", type=int, default=0, metavar="K",
                         help="also run default SVGD at seeds 0..K-1 and count those meeting the tolerance")
+    parser.add_argument("--quick", action="store_true",
+                        help="SVGD only, 50 particles, 60 steps, two posteriors (a check that it runs)")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch intra-op threads (1 is fastest on a machine shared with other jobs)")
+    return parser
+
+
+def main(args: list[str] | None = None) -> int:
+    parser = build_parser()
     opts = parser.parse_args(args)
     if opts.threads is not None:
         if opts.threads < 1:
@@ -131,7 +152,7 @@ def main(args: list[str] | None = None) -> int:
 
         torch.set_num_threads(opts.threads)
     pdb = load_models(opts.posteriors)
-    names = opts.names or pdb.NAMES
+    names = opts.names or (QUICK_NAMES if opts.quick else pdb.NAMES)
     unknown = [n for n in names if n not in pdb.NAMES]
     if unknown:
         parser.error(f"--names: unknown posteriors {unknown}; choose from {pdb.NAMES}")
@@ -143,7 +164,7 @@ def main(args: list[str] | None = None) -> int:
     print("-" * len(header))
     passed = {"svgd": 0, "mala": 0}
     for name in names:
-        for row in run_one(pdb, name, opts.seed):
+        for row in run_one(pdb, name, opts.seed, opts.quick):
             ok = row["evals_to_tolerance"] is not None  # the final output is the last checkpoint
             passed[row["method"]] += ok
             print(f"{name[:38]:<38} {row['method']:<6} {row['mean_error']:8.3f} {row['sd_ratio_min']:6.3f} "
@@ -156,6 +177,9 @@ def main(args: list[str] | None = None) -> int:
         if opts.seeds:
             print(f"{'':<38} seeds  svgd meets the tolerance at {seeds_within_tolerance(pdb, name, opts.seeds)} of "
                   f"seeds 0..{opts.seeds - 1}", flush=True)
+    if opts.quick:
+        print(f"tolerance met: svgd {passed['svgd']}/{len(names)} (quick run: 50 particles, 60 steps; not a measurement)")
+        return 0
     print(f"tolerance met: svgd {passed['svgd']}/{len(names)}, mala {passed['mala']}/{len(names)}")
     good = passed["svgd"] == len(names) and passed["mala"] >= min(MALA_NEEDED, len(names))
     return 0 if good else 1

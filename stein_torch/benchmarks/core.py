@@ -40,7 +40,7 @@ import stein_torch as st
 from stein_torch.kernels import IMQ, RBF, Linear
 from stein_torch.stein import Scratch, svgd_direction
 
-__all__ = ["main"]
+__all__ = ["main", "build_parser"]
 
 FULL = {"directions": [(4096, 64), (1024, 16)], "memory": (50_000, 10), "loop": (256, 20), "repeats": 15}
 QUICK = {"directions": [(256, 8), (64, 4)], "memory": (2_000, 10), "loop": (32, 4), "repeats": 3}
@@ -205,13 +205,19 @@ def loop_speedup(n: int, d: int, repeats: int) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------- main
-def main(args: list[str]) -> int:
-    """Print the core table; return 1 if a figure misses its bound."""
-    parser = argparse.ArgumentParser(prog="stein-torch bench core")
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="stein-torch bench core",
+        description="SVGD direction against the bare matmuls, peak memory of a step, against a per-particle loop")
     parser.add_argument("--quick", action="store_true", help="small sizes (for tests; figures not meaningful)")
     parser.add_argument("--memory-child", nargs=2, type=int, metavar=("N", "D"), help=argparse.SUPPRESS)
     parser.add_argument("--threads", type=int, help=argparse.SUPPRESS)
-    opts = parser.parse_args(args)
+    return parser
+
+
+def main(args: list[str]) -> int:
+    """Print the core table; return 1 if a figure misses its bound."""
+    opts = build_parser().parse_args(args)
     if opts.threads:
         torch.set_num_threads(opts.threads)
     if opts.memory_child:

@@ -34,7 +34,7 @@ import stein_torch as st
 from stein_torch.samplers.distributed import sharding
 from stein_torch.samplers.svgd import Sampler
 
-__all__ = ["main", "scaling_table", "received_bytes"]
+__all__ = ["main", "build_parser", "scaling_table", "received_bytes"]
 
 FULL = {"score": (200_000, 20, 256), "pairwise": (16_384, 16), "memory": (200_000, 10), "rounds": 3, "steps": 5}
 QUICK = {"score": (4_000, 5, 32), "pairwise": (512, 4), "memory": (2_000, 4), "rounds": 1, "steps": 2}
@@ -159,7 +159,8 @@ def run_config(config: dict, ranks: int) -> dict:
     done = subprocess.run(command, capture_output=True, text=True, env=env, timeout=3600)
     lines = [line for line in done.stdout.splitlines() if line.startswith("{")]
     if done.returncode != 0 or not lines:
-        tail = (done.stderr.strip().splitlines() or ["no output"])[-1]
+        lines = [x for x in done.stderr.splitlines() if x.strip(" =-") and "Error" in x] or ["no error message"]
+        tail = lines[-1].strip()
         raise RuntimeError(f"bench distributed: {config['kind']} on {ranks} rank(s) failed: {tail}")
     return json.loads(lines[-1])
 
@@ -205,16 +206,21 @@ def scaling_table(one: dict, mode: str, n: int, d: int, latency: float, bandwidt
 
 
 # ------------------------------------------------------------------------------------------- main
-def main(args: list[str]) -> int:
-    """Print the distributed table; return 1 if a figure misses its floor."""
-    parser = argparse.ArgumentParser(prog="stein-torch bench distributed")
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="stein-torch bench distributed",
+                                     description="1 rank against 2: particle and data sharding, memory per rank, scaling")
     parser.add_argument("--quick", action="store_true", help="small sizes (for tests; figures not meaningful)")
     parser.add_argument("--rounds", type=int, help="alternating rounds of the timed configurations")
     parser.add_argument("--json", action="store_true", help="also print the raw figures as JSON")
     parser.add_argument("--parts", choices=("all", "timing", "memory"), default="all",
                         help="timing: rows (a)-(c), (e); memory: row (d) (it takes minutes: one step at N = 200,000)")
     parser.add_argument("--worker", help=argparse.SUPPRESS)
-    opts = parser.parse_args(args)
+    return parser
+
+
+def main(args: list[str] | None = None) -> int:
+    """Print the distributed table; return 1 if a figure misses its floor."""
+    opts = build_parser().parse_args(args)
     if opts.worker:
         out = worker(json.loads(opts.worker))
         if out is not None:

@@ -28,7 +28,7 @@ import time
 import numpy as np
 import torch
 
-__all__ = ["TARGETS", "KERNELS", "run_study", "summarise", "plot", "main"]
+__all__ = ["TARGETS", "KERNELS", "run_study", "summarise", "plot", "main", "build_parser"]
 
 # ----------------------------------------------------------------------------- targets
 MIX_W, MIX_MU, MIX_SD = (0.35, 0.65), (-2.0, 1.5), (0.6, 0.9)
@@ -226,15 +226,20 @@ def plot(records, baselines, path=None, axis="evals"):
     return fig
 
 
-def main(args: list[str] | None = None) -> int:
+def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="stein-torch bench kernels", description=__doc__.split("\n\n")[0])
     parser.add_argument("--quick", action="store_true", help="fewer steps and checkpoints (about a minute)")
     parser.add_argument("--steps", type=int, default=None, help="accepted integrator steps per run (default 300; quick 60)")
-    parser.add_argument("--particles", type=int, default=100)
-    parser.add_argument("--rtol", type=float, default=1e-3)
-    parser.add_argument("--seed", type=int, default=0)
-    parser.add_argument("--plot", default=None, help="write the W1-vs-evaluations figure to this path")
+    parser.add_argument("--particles", type=int, default=100, help="particles per run (default 100)")
+    parser.add_argument("--rtol", type=float, default=1e-3, help="relative error tolerance of the adaptive steps (default 1e-3)")
+    parser.add_argument("--seed", type=int, default=0, help="seed (default 0)")
+    parser.add_argument("--plot", default=None, metavar="FILE.png", help="write the W1-vs-evaluations figure to this path")
     parser.add_argument("--threads", type=int, default=1, help="torch threads (small matrices: 1 is fastest)")
+    return parser
+
+
+def main(args: list[str] | None = None) -> int:
+    parser = build_parser()
     opts = parser.parse_args(args)
     if opts.threads >= 1:
         torch.set_num_threads(opts.threads)

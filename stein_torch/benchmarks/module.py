@@ -35,7 +35,7 @@ from torch.distributions import Normal
 
 import stein_torch as st
 
-__all__ = ["main"]
+__all__ = ["main", "build_parser"]
 
 PARTICLES, OBSERVATIONS, INPUTS, HIDDEN = 50, 10_000, 10, 50
 BOUND = 5.0
@@ -92,12 +92,17 @@ def measure(repeats: int, batch_size: int | None = None) -> dict:
     }
 
 
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="stein-torch bench module",
+                                     description="nn.Module scores: vmap against a loop over particles")
+    parser.add_argument("--quick", action="store_true", help="fewer repeats (same sizes; fails only if vmap and loop disagree)")
+    parser.add_argument("--json", action="store_true", help="print the figures as JSON")
+    return parser
+
+
 def main(args: list[str] | None = None) -> int:
     """Print the table; return 0 when the ratio meets the bound and both paths agree, else 1."""
-    parser = argparse.ArgumentParser(prog="stein-torch bench module", description=__doc__.splitlines()[0])
-    parser.add_argument("--quick", action="store_true", help="fewer repeats (same sizes)")
-    parser.add_argument("--json", action="store_true", help="print the figures as JSON")
-    options = parser.parse_args(args)
+    options = build_parser().parse_args(args)
     repeats = 3 if options.quick else 11
     rows = [measure(repeats), measure(repeats, batch_size=MINIBATCH)]
     overhead = measure(repeats, batch_size=1)["loop_s"]  # the loop on one observation: overhead only
@@ -114,7 +119,10 @@ def main(args: list[str] | None = None) -> int:
         print(f"  bound {BOUND:.0f}x on the full-data row: {'met' if rows[0]['ratio'] >= BOUND else 'MISSED'}")
         print(f"  loop overhead (one observation per score) {1e3 * overhead:.1f} ms of the loop's "
               f"{1e3 * rows[0]['loop_s']:.1f} ms on the full data: removing all of it gives {ceiling:.2f}x")
-    return 0 if rows[0]["ratio"] >= BOUND and all(r["agree"] for r in rows) else 1
+    agree = all(r["agree"] for r in rows)
+    if options.quick:  # few repeats on a shared machine: the ratio is not a measurement, agreement still is
+        return 0 if agree else 1
+    return 0 if rows[0]["ratio"] >= BOUND and agree else 1
 
 if __name__ == "__main__":
     raise SystemExit(main())

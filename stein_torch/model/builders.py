@@ -20,6 +20,7 @@ def from_priors(
     data: Mapping | None = None,
     batch_size: int | None = None,
     observed=None,
+    dims: Mapping[str, tuple] | None = None,
 ):
     """Build a target from prior distributions and a log likelihood (``Target.from_priors``).
 
@@ -33,9 +34,12 @@ def from_priors(
         (``init="prior"``).
     log_likelihood : callable, optional
         ``log_likelihood(p) -> (...)`` for a dict of constrained values with leading batch dims;
-        with ``data``, ``log_likelihood(p, data) -> (..., n_obs)`` per observation.
+        with ``data``, ``log_likelihood(p, data) -> (..., n_obs)`` per observation, or a torch
+        Distribution over ``data[observed]`` (then the target can simulate data: predictive checks).
     data, batch_size, observed
         As in :class:`stein_torch.Target`.
+    dims : dict of str to tuple of str, optional
+        ArviZ dimension names of a latent's axes, e.g. ``{"effect": ("school",)}`` (see :class:`Latent`).
 
     Returns
     -------
@@ -50,7 +54,12 @@ def from_priors(
             )
     if log_likelihood is not None and not callable(log_likelihood):
         raise TypeError("Target.from_priors: log_likelihood must be callable")
-    latents = {name: Latent(tuple(d.batch_shape + d.event_shape), d.support) for name, d in priors.items()}
+    dims = dict(dims or {})
+    unknown = sorted(set(dims) - set(priors))
+    if unknown:
+        raise ValueError(f"Target.from_priors: dims names {unknown}, which are not among the priors {sorted(priors)}")
+    latents = {name: Latent(tuple(d.batch_shape + d.event_shape), d.support, dims=dims.get(name))
+               for name, d in priors.items()}
 
     def log_joint(p):
         total = 0.0

@@ -25,8 +25,9 @@ import numpy as np
 import torch
 
 from ..checks import check_int
+from .likelihood import check_terms, observation_terms
 
-__all__ = ["ObservedData", "with_likelihood", "pointwise_log_likelihood", "full_log_prob", "likelihood_groups"]
+__all__ = ["ObservedData", "with_likelihood", "pointwise_log_likelihood", "full_log_prob", "likelihood_groups", "data_dims"]
 
 POINTWISE_ELEMENTS = 2**20  # particles x observations per chunk of the pointwise log-likelihood
 SCORE_PAIRS = 2**15  # particles x observations per autograd pass of a score (larger: in observation chunks)
@@ -91,6 +92,7 @@ class ObservedData:
         if unknown:
             raise ValueError(f"observed: {unknown} are not keys of data (keys: {list(tensors)})")
         self.observed = observed
+        self.simulates: bool | None = None  # whether the likelihood returns a Distribution (known after a call)
         self.indices: torch.Tensor | None = None
         self.window: tuple[int, int] | None = None  # rows of the data in use that a score chunk sees
         self.shard: tuple[int, int] | None = None  # data sharding: the observations this process scores
@@ -250,45 +252,34 @@ def _dtype_of(arg) -> tuple[torch.dtype, torch.device]:
     return first.dtype, first.device
 
 
-def _check_terms(terms, n: int) -> torch.Tensor:
-    if not isinstance(terms, torch.Tensor):
-        raise TypeError(f"log_likelihood must return a torch.Tensor, got {type(terms).__qualname__}")
-    if terms.dim() == 0 or terms.shape[-1] != n:
-        raise ValueError(
-            f"log_likelihood returned shape {tuple(terms.shape)} for {n} observations; it must return one "
-            "term per observation, shape (*batch, n_obs)"
-        )
-    return terms
-
-
 def with_likelihood(log_prior: Callable, log_likelihood: Callable, data: ObservedData) -> Callable:
     """The joint log density ``log_prior(p) + scale * log_likelihood(p, batch).sum(-1)``.
 
     Written so that it is batched when both user functions are, and vmappable when they are written
-    for one parameter value (then ``log_likelihood`` returns shape (n_obs,)).
+    for one parameter value (then ``log_likelihood`` returns shape (n_obs,)). ``log_likelihood`` may
+    return a torch Distribution over the observed key instead (:mod:`stein_torch.model.likelihood`).
     """
 
     def log_joint(arg):
         dtype, device = _dtype_of(arg)
         batch, scale = data.current(dtype, device)
-        n = next(iter(batch.values())).shape[0]
-        terms = _check_terms(log_likelihood(arg, batch), n)
+        terms = observation_terms(log_likelihood(arg, batch), batch, data)
         likelihood = scale * terms.sum(-1)
         return log_prior(arg) + likelihood if data.with_prior else likelihood
 
     return log_joint
 
 
-def _pointwise_chunk(log_likelihood: Callable, arg, batch: dict, n_particles: int, n: int) -> torch.Tensor:
+def _pointwise_chunk(log_likelihood: Callable, arg, batch: dict, n_particles: int, n: int, data) -> torch.Tensor:
     """Terms (n_particles, n) for a flat batch of particles, batched call first, vmap if needed."""
     try:
-        terms = log_likelihood(arg, batch)
-        if isinstance(terms, torch.Tensor) and tuple(terms.shape) == (n_particles, n):
+        terms = observation_terms(log_likelihood(arg, batch), batch, data)
+        if tuple(terms.shape) == (n_particles, n):
             return terms
     except Exception:
         pass
-    terms = torch.func.vmap(lambda a: log_likelihood(a, batch))(arg)
-    return _check_terms(terms, n)
+    terms = torch.func.vmap(lambda a: observation_terms(log_likelihood(a, batch), batch, data))(arg)
+    return check_terms(terms, n)
 
 
 def pointwise_log_likelihood(
@@ -327,7 +318,7 @@ def pointwise_log_likelihood(
             for o0 in range(0, n_obs, obs_chunk):
                 o1 = min(n_obs, o0 + obs_chunk)
                 batch = data.slice(first + o0, first + o1, z.dtype, z.device)
-                out[p0 : p0 + m, o0:o1] = _pointwise_chunk(target.log_likelihood, arg, batch, m, o1 - o0).cpu()
+                out[p0 : p0 + m, o0:o1] = _pointwise_chunk(target.log_likelihood, arg, batch, m, o1 - o0, data).cpu()
     return out.reshape(*batch_shape, n_obs).numpy()
 
 
@@ -338,6 +329,11 @@ def full_log_prob(target, z: torch.Tensor, max_elements: int = POINTWISE_ELEMENT
     with torch.no_grad(), target.data.full():
         parts = [target.log_prob(flat[i : i + chunk]) for i in range(0, flat.shape[0], chunk)]
     return torch.cat(parts).reshape(z.shape[:-1])
+
+
+def data_dims(name: str, ndim: int) -> list[str]:
+    """ArviZ dims of a data variable of ``ndim`` axes, (obs, ...): the observation axis is ``obs``."""
+    return ["obs"] + [f"{name}_dim_{i}" for i in range(1, ndim)]
 
 
 def likelihood_groups(target, z: torch.Tensor, values: np.ndarray | None = None) -> dict:
@@ -353,7 +349,7 @@ def likelihood_groups(target, z: torch.Tensor, values: np.ndarray | None = None)
     dims = {name: ["obs"]}
     for group in (observed, constant):
         for k, v in group.items():
-            dims[k] = ["obs"] + [f"{k}_dim_{i}" for i in range(1, v.ndim)]  # (obs, ...)
+            dims[k] = data_dims(k, v.ndim)
     groups = {"log_likelihood": {name: values}}
     if observed:
         groups["observed_data"] = observed

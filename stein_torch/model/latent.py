@@ -10,6 +10,7 @@ Examples
 >>> Latent((8,))                                   # eight real values
 >>> Latent(support=constraints.positive)           # a positive scalar
 >>> Latent((3,), support=constraints.simplex)      # 3 probabilities (2 free coordinates)
+>>> Latent((8,), dims=("school",))                 # eight reals along the ArviZ dimension "school"
 """
 
 from __future__ import annotations
@@ -35,10 +36,15 @@ class Latent:
     support : torch.distributions.constraints.Constraint, default=constraints.real
         Where the values live (as in ``Distribution.support``); sampling happens on the
         unconstrained side of ``biject_to(support)``.
+    dims : tuple of str, optional
+        Names of the value's axes in ArviZ groups (one per axis of ``shape``), e.g.
+        ``("school",)``; default ``("<name>_dim_0", ...)``. Give their labels with
+        ``to_inference_data(coords={"school": [...]})``.
     """
 
     shape: tuple = ()
     support: constraints.Constraint = field(default=constraints.real)
+    dims: tuple | None = None
 
     def __post_init__(self):
         shape = (self.shape,) if isinstance(self.shape, int) and not isinstance(self.shape, bool) else self.shape
@@ -47,6 +53,17 @@ class Latent:
         ):
             raise ValueError(f"Latent: shape must be a tuple of positive ints, got {self.shape!r}")
         object.__setattr__(self, "shape", tuple(shape))
+        if self.dims is not None:
+            dims = (self.dims,) if isinstance(self.dims, str) else self.dims
+            if not isinstance(dims, (tuple, list)) or not all(isinstance(d, str) and d for d in dims):
+                raise TypeError(f"Latent: dims must be a tuple of non-empty str (one per axis), got {self.dims!r}")
+            if len(dims) != len(self.shape):
+                raise ValueError(
+                    f"Latent: dims must name each of the {len(self.shape)} axes of shape {self.shape}, got {tuple(dims)}"
+                )
+            if len(set(dims)) != len(dims):
+                raise ValueError(f"Latent: dims must be distinct, got {tuple(dims)}")
+            object.__setattr__(self, "dims", tuple(dims))
         support = self.support
         if not isinstance(support, constraints.Constraint):
             raise TypeError(
@@ -82,11 +99,14 @@ class Block:
         Slice ``start : start + size`` of the flat vector.
     identity : bool
         The real line: no transform and no log-Jacobian.
+    dims : tuple of str
+        ArviZ dimension names of the value's axes (``spec.dims`` or ``<name>_dim_<i>``).
     """
 
     def __init__(self, name: str, spec: Latent, start: int):
         self.name = name
         self.shape = torch.Size(spec.shape)
+        self.dims = spec.dims if spec.dims is not None else tuple(f"{name}_dim_{i}" for i in range(len(spec.shape)))
         self.support = spec.support
         self.transform = biject_to(spec.support)
         inner = self.transform

@@ -12,6 +12,11 @@ and a name that starts with a digit (layers of :class:`torch.nn.Sequential`) get
 ``layer``: ``0.weight -> layer0__weight``, ``encoder.fc.bias -> encoder__fc__bias``. The mapping is
 ``target.module_names`` (safe name -> dotted name); priors may be keyed by either form.
 
+Dimension names (in every ArviZ group) follow the layer's axes, prefixed by the layer's safe name:
+``nn.Linear`` weight ``(layer0_out, layer0_in)`` and bias ``(layer0_out,)``; convolutions
+``(out, in, kernel_0, ...)`` (transposed: ``(in, out, ...)``); ``nn.Embedding`` ``(index, feature)``;
+normalisation layers ``(feature, ...)``. Other layers keep ``<parameter>_dim_<i>``.
+
 What is supported
 -----------------
 Buffers (e.g. batch-norm running statistics in eval mode) and frozen parameters
@@ -36,7 +41,7 @@ from ..kernels import RBF
 from .defaults import SamplerDefaults
 from .latent import Latent
 
-__all__ = ["module_target", "safe_name"]
+__all__ = ["module_target", "safe_name", "layer_dims"]
 
 EXTRA_INIT_DRAWS = 1001  # prior draws whose median centres the initial likelihood parameters
 EXTRA_INIT_JITTER = 0.1  # sd of their initial spread on the unconstrained scale
@@ -46,6 +51,39 @@ def safe_name(dotted: str) -> str:
     """Identifier-safe name of a module parameter: ``0.weight -> layer0__weight``."""
     name = dotted.replace(".", "__")
     return "layer" + name if name[:1].isdigit() else name
+
+
+def _axis_names(m: nn.Module, pname: str, ndim: int) -> tuple[str, ...] | None:
+    """Names of the axes of parameter ``pname`` of layer ``m`` (None: no known layout)."""
+    if isinstance(m, (nn.Linear, nn.Bilinear)) or (isinstance(m, nn.modules.conv._ConvNd) and not m.transposed):
+        lead = ("out", "in") if not isinstance(m, nn.Bilinear) else ("out", "in1", "in2")
+    elif isinstance(m, nn.modules.conv._ConvNd):
+        lead = ("in", "out")
+    elif isinstance(m, nn.Embedding):
+        lead = ("index", "feature")
+    elif isinstance(m, (nn.LayerNorm, nn.GroupNorm, nn.modules.batchnorm._NormBase)):
+        lead = ("feature",)
+    else:
+        return None
+    if pname == "bias":
+        return ("out",) if ndim == 1 and "out" in lead else (lead[0],) if ndim == 1 else None
+    if isinstance(m, nn.modules.conv._ConvNd):
+        return (lead + tuple(f"kernel_{i}" for i in range(ndim - 2)))[:ndim]
+    if isinstance(m, nn.LayerNorm):
+        return tuple(f"feature_{i}" for i in range(ndim)) if ndim > 1 else ("feature",)
+    return lead if len(lead) == ndim else None
+
+
+def layer_dims(module: nn.Module) -> dict[str, tuple[str, ...]]:
+    """ArviZ dimension names of each trainable parameter (by dotted name) after its layer's axes."""
+    dims = {}
+    for mname, m in module.named_modules():
+        prefix = safe_name(mname) if mname else "module"
+        for pname, p in m.named_parameters(recurse=False):
+            axes = _axis_names(m, pname, p.dim())
+            if axes is not None:
+                dims[f"{mname}.{pname}" if mname else pname] = tuple(f"{prefix}_{a}" for a in axes)
+    return dims
 
 
 def _check_modes(module: nn.Module) -> None:
@@ -196,7 +234,8 @@ def module_target(
     priors = {safe: _prior_for(prior, dotted, safe, shapes[safe]) for safe, dotted in names.items()}
     priors.update(extra_priors)
     shapes.update({k: torch.Size(d.batch_shape + d.event_shape) for k, d in extra_priors.items()})
-    latents = {k: Latent(tuple(shapes[k]), priors[k].support) for k in priors}
+    axes = layer_dims(module)
+    latents = {k: Latent(tuple(shapes[k]), priors[k].support, dims=axes.get(names.get(k, ""))) for k in priors}
 
     cast_cache: dict = {}
 

@@ -55,7 +55,10 @@ class Target:
         enables ``init="prior"``.
     log_likelihood : callable, optional
         ``log_likelihood(p, data) -> (*batch, n_obs)``: one log-likelihood term per observation
-        (``p`` as for ``log_prob``, ``data`` a dict of tensors (n_obs, ...) or a minibatch of them).
+        (``p`` as for ``log_prob``, ``data`` a dict of tensors (n_obs, ...) or a minibatch of them);
+        or a :class:`torch.distributions.Distribution` over ``data[observed]`` (batch shape
+        (*batch, n_obs), or broadcasting to it), whose ``log_prob`` gives the terms and whose
+        ``sample()`` simulates data (``posterior_predictive``, :func:`stein_torch.prior_predictive`).
         Then ``log_prob`` is the log prior and the target is ``log_prob(p) + sum of the terms``;
         the terms fill the ``log_likelihood`` group of the InferenceData (for :func:`arviz.loo`).
     data : dict of str to Tensor, optional
@@ -65,7 +68,7 @@ class Target:
         (stochastic SVGD, reshuffled each epoch, shuffles from the sampler's seed). Default: full data.
     observed : str or list of str, optional
         Keys of ``data`` that are observations (``observed_data`` group); the others are covariates
-        (``constant_data``).
+        (``constant_data``). One key when ``log_likelihood`` returns a Distribution.
     predictive : callable, optional
         ``predictive(p, inputs) -> (*batch, n, ...)``, used by :meth:`Result.predict`.
     defaults : SamplerDefaults, optional
@@ -116,20 +119,37 @@ class Target:
             joint = with_likelihood(log_prob, log_likelihood, self.data)
         elif batch_size is not None or observed is not None:
             raise ValueError("Target: batch_size= and observed= need log_likelihood= and data=")
-        self._user = Batched(joint, self.flat, "log_prob")
+        origin = (log_likelihood, log_prob) if log_likelihood is not None else (log_prob,)
+        self._user = Batched(joint, self.flat, "log_prob", describe=self._describe_inputs, origin=origin)
 
     # ------------------------------------------------------------------ construction helpers
     @classmethod
-    def from_priors(cls, priors, log_likelihood=None, *, data=None, batch_size=None, observed=None) -> "Target":
+    def from_priors(cls, priors, log_likelihood=None, *, data=None, batch_size=None, observed=None, dims=None) -> "Target":
         """A target from prior distributions and a log likelihood; see
         :func:`stein_torch.model.builders.from_priors`."""
-        return from_priors(cls, priors, log_likelihood, data=data, batch_size=batch_size, observed=observed)
+        return from_priors(cls, priors, log_likelihood, data=data, batch_size=batch_size, observed=observed, dims=dims)
 
     @classmethod
     def from_module(cls, module, *, prior, likelihood: Callable, data, batch_size: int | None = None, **options):
         """A Bayesian neural network whose particles are stacked copies of ``module``'s parameters;
         see :func:`stein_torch.model.module.module_target`."""
         return module_target(cls, module, prior=prior, likelihood=likelihood, data=data, batch_size=batch_size, **options)
+
+    def _describe_inputs(self) -> tuple[str, list[str]]:
+        """What the user's functions receive, for messages: (text, names)."""
+        if self.flat:
+            n = self.dim
+            text = f"x of shape (..., {n}) (dim={n}), so x[..., i] takes i in 0..{n - 1}"
+            names = ["x"]
+        else:
+            parts = [f"{b.name}: (...{''.join(f', {n}' for n in b.shape)})" for b in self.blocks]
+            text = "p with the latents " + ", ".join(parts) + " (... = batch)"
+            names = list(self.names)
+        if self.data is not None:
+            shapes = ", ".join(f"{k}: {tuple(v.shape)}" for k, v in self.data.tensors.items())
+            text += f"; data with the keys {shapes}"
+            names += list(self.data.tensors)
+        return text, names
 
     # ------------------------------------------------------------------ coordinates
     @property
@@ -139,6 +159,11 @@ class Target:
     @property
     def shapes(self) -> dict[str, torch.Size]:
         return {b.name: b.shape for b in self.blocks}
+
+    @property
+    def dims(self) -> dict[str, tuple]:
+        """ArviZ dimension names of every latent's axes (see :class:`Latent`)."""
+        return {b.name: b.dims for b in self.blocks}
 
     def constrain(self, z: torch.Tensor) -> tuple[dict, torch.Tensor]:
         """Map flat unconstrained ``z`` (..., dim) to constrained values and the log-Jacobian (...)."""

@@ -58,6 +58,7 @@ class Result:
         self.warnings = list(warnings or [])
         self._draws = None
         self._likelihood = None
+        self._simulated: dict = {}  # posterior predictive data sets by seed
 
     @property
     def draws(self) -> dict[str, torch.Tensor]:
@@ -72,16 +73,28 @@ class Result:
     def method(self) -> str:
         return str(self.settings.get("method", "svgd"))
 
-    def to_inference_data(self, **groups):
+    def to_inference_data(self, *, coords=None, dims=None, predictive_seed=None, **groups):
         """Convert to :class:`arviz.InferenceData`.
 
         Groups: ``posterior`` (one variable per latent, dims chain, draw, *shape; for SVGD
         chain = ensemble, draw = particle), ``sample_stats`` (``lp`` per draw and any statistics of
         the sampler), attrs with the library name, version, settings and warnings. For targets with
         data: ``log_likelihood`` (per-observation terms on the full data, dims chain, draw, obs: what
-        :func:`arviz.loo` reads), ``observed_data`` and ``constant_data``. ``predictions=`` takes
+        :func:`arviz.loo` reads), ``observed_data`` and ``constant_data``; and when the likelihood
+        returns a torch Distribution, ``posterior_predictive`` (one simulated data set per draw,
+        seeded by ``predictive_seed``, default the run's seed). ``predictions=`` takes
         :meth:`predict` outputs (chains, draws, n, ...) or a dict of them. Other groups may be
         passed as keyword arguments of :func:`arviz.from_dict`.
+
+        Parameters
+        ----------
+        coords : dict of str to array-like, optional
+            Labels of dimensions, e.g. ``{"school": names}``; passed to :func:`arviz.from_dict`.
+        dims : dict of str to list of str, optional
+            Dimension names per variable, replacing ours (latents: ``Latent(dims=...)`` or
+            ``<name>_dim_<i>``; data, log-likelihood and simulated data: ``obs``, ...).
+        predictive_seed : int, optional
+            Seed of the simulated data sets.
 
         Notes
         -----
@@ -90,7 +103,7 @@ class Result:
         """
         from .inference_data import to_inference_data
 
-        return to_inference_data(self, **groups)
+        return to_inference_data(self, coords=coords, dims=dims, predictive_seed=predictive_seed, **groups)
 
     def predict(self, inputs, *, predictive=None) -> torch.Tensor:
         """Outputs of every particle on ``inputs``, shape (chains, draws, n, ...).
@@ -102,6 +115,14 @@ class Result:
         from .predictive import predict
 
         return predict(self, inputs, predictive)
+
+    def plot_history(self, figsize=None):
+        """Per-step figures as a matplotlib Figure: for SVGD the KSD of each ensemble, the mean log
+        density, the step size and the direction size, with re-whitening steps marked and annealing
+        shaded; for Langevin the step size and acceptance rate per chain. Axes are labelled."""
+        from .plots import plot_history
+
+        return plot_history(self, figsize=figsize)
 
     def summary(self, **kwargs):
         """Posterior summary by :func:`arviz.summary` (a pandas DataFrame).

@@ -193,8 +193,9 @@ class Sampler:
             raise FloatingPointError(message) from self.evaluate.last_error
         self.u, self.lp, self.score = u_new, lp, score
         self.step_count += 1
-        self._record(phi=phi, faults=faults, reverted=reverted, drive=drive)
-        if self.precondition in ("laplace", "covariance") and rewhiten_due(self.step_count):
+        rewhiten = self.precondition in ("laplace", "covariance") and rewhiten_due(self.step_count)
+        self._record(phi=phi, faults=faults, reverted=reverted, drive=drive, rewhitened=rewhiten)
+        if rewhiten:
             self.rewhiten()
 
     def rewhiten(self) -> None:
@@ -220,6 +221,7 @@ class Sampler:
             "reverted": figures["reverted"],
             "grad_evals": self.grad_evals,
             "drive": figures["drive"],
+            "rewhitened": bool(figures["rewhitened"]),  # re-whitened after this step (result.plot_history marks it)
         }
         row.update({k: v for k, v in self.stepper.info().items() if k not in row})  # e.g. rejections, error
         if self.kernel.last_bandwidth is not None:
