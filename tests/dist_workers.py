@@ -51,6 +51,20 @@ def regression_target(n_obs: int = 240, d: int = 3, batch_size: int | None = Non
                      data={"x": x, "y": y}, observed="y", batch_size=batch_size)
 
 
+def regression_target_distribution(n_obs: int = 240, d: int = 3) -> st.Target:
+    """The same model with the likelihood given as a torch Distribution over data["y"]."""
+    x, y = regression_data(n_obs, d)
+
+    def log_prior(p):
+        return -0.5 * (p["w"] ** 2).sum(-1) / PRIOR_SD**2
+
+    def likelihood(p, data):
+        return torch.distributions.Normal(p["w"] @ data["x"].T, NOISE)
+
+    return st.Target(log_prior, latents={"w": st.Latent((d,))}, log_likelihood=likelihood,
+                     data={"x": x, "y": y}, observed="y")
+
+
 def regression_posterior(n_obs: int = 240, d: int = 3):
     """Closed-form posterior of :func:`regression_target` (conjugate Gaussian): mean and covariance."""
     x, y = regression_data(n_obs, d)
@@ -96,6 +110,8 @@ CASES = {
     "data": (lambda: regression_target(), dict(particles=30, steps=30, seed=1, distributed="data")),
     "data_minibatch": (lambda: regression_target(batch_size=64),
                        dict(particles=30, steps=30, seed=2, ensembles=2, distributed="data")),
+    "data_distribution": (lambda: regression_target_distribution(), dict(particles=30, steps=20, seed=5,
+                                                                         distributed="data")),
     "nan_one_rank": (holed_target, dict(particles=40, steps=8, seed=0, precondition=None,
                                         init=holed_start(40), stop=False, distributed="particles")),
 }
