@@ -204,13 +204,16 @@ def work_checkpoint(rank: int, world: int, checkpoint: str, steps: int, resume: 
 class FailingStep(st.steppers.GradientStep):
     """Gradient steps, except that rank ``rank`` fails in step ``at`` in the way ``how`` says."""
 
-    def __init__(self, how: str, at: int, rank: int):
+    def __init__(self, how: str, at: int, rank: int, clock_file: str | None = None):
         super().__init__(0.1, max_move=0.3)
-        self.how, self.at, self.rank, self.calls = how, at, rank, 0
+        self.how, self.at, self.rank, self.calls, self.clock_file = how, at, rank, 0, clock_file
 
     def step(self, u, phi, velocity):
         self.calls += 1
         if self.calls == self.at and int(os.environ.get("STEIN_TEST_RANK", -1)) == self.rank:
+            if self.clock_file:  # when the failure happened (wall clock of this machine)
+                with open(self.clock_file, "w") as f:
+                    f.write(repr(time.time()))
             if self.how == "raise":
                 raise OSError("disk quota exceeded while writing scratch data")
             if self.how == "kill":
@@ -225,13 +228,16 @@ class FailingStep(st.steppers.GradientStep):
 
 def work_failure(rank: int, world: int, how: str, at: int, checkpoint: str, timeout: float):
     target = gaussian_target()
-    started = time.monotonic()
+    clock = os.path.join(os.path.dirname(checkpoint), "failed_at")
     try:
         st.svgd(target, particles=30, steps=50, seed=4, stop=False, precondition=None, progress=False,
-                stepper=FailingStep(how, at, world - 1), checkpoint=checkpoint, checkpoint_every=3,
+                stepper=FailingStep(how, at, world - 1, clock), checkpoint=checkpoint, checkpoint_every=3,
                 distributed=st.Sharding("particles", timeout=timeout))
     except st.RankFailure as err:
-        return {"error": str(err), "kind": "RankFailure", "seconds": time.monotonic() - started}
+        stopped = time.time()
+        with open(clock) as f:
+            failed = float(f.read())
+        return {"error": str(err), "kind": "RankFailure", "seconds": stopped - failed}
     return {"error": None}
 
 

@@ -181,6 +181,8 @@ def test_a_rank_that_raises_stops_the_others_with_its_name(tmp_path):
     assert report["kind"] == "RankFailure" and "\n" not in report["error"]
     assert report["error"].startswith("rank 1 raised OSError: disk quota exceeded"), report["error"]
     assert report["seconds"] < 60, report  # stopped, not hung (it takes well under a second)
+    # "seconds": from rank 1's failure to rank 0's error, on this machine's clock
+    print(f"raising rank: rank 0 stopped {report['seconds']:.2f} s after rank 1 raised: {report['error']}")
     assert _resumed_equals_uninterrupted(checkpoint) == 6  # written every 3 steps; step 8 failed
 
 
@@ -193,6 +195,7 @@ def test_a_rank_that_dies_is_named_by_the_others(tmp_path):
         report = out[rank][1]
         assert report["error"].startswith("rank 2 stopped responding"), report["error"]
         assert report["seconds"] < 60, report  # stopped, not hung (about 3 s)
+        print(f"killed rank: rank {rank} stopped {report['seconds']:.2f} s after rank 2 was killed: {report['error']}")
     assert _resumed_equals_uninterrupted(checkpoint) == 3
 
 
@@ -202,6 +205,7 @@ def test_a_rank_that_hangs_is_named_after_the_timeout(tmp_path):
     report = out[0][1]
     assert report["error"].startswith("rank 1 did not reach the exchange within the timeout of 3 s"), report
     assert report["seconds"] < 60, report
+    print(f"hung rank: rank 0 stopped {report['seconds']:.2f} s after rank 1 hung: {report['error']}")
 
 
 @pytest.mark.slow
