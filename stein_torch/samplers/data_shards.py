@@ -19,16 +19,15 @@ from ..model.data import likelihood_groups, pointwise_log_likelihood
 __all__ = ["ShardedTarget", "observation_split", "gather_likelihood"]
 
 
-def observation_split(n_obs: int, comm) -> tuple[int, int]:
-    """Observations ``(lo, hi)`` of this rank: contiguous blocks, the first n_obs % R one larger."""
-    lo = 0
-    for r in range(comm.rank):
-        lo += n_obs // comm.world + (1 if r < n_obs % comm.world else 0)
-    return lo, lo + n_obs // comm.world + (1 if comm.rank < n_obs % comm.world else 0)
-
-
 def _counts(n_obs: int, world: int) -> list[int]:
     return [n_obs // world + (1 if r < n_obs % world else 0) for r in range(world)]
+
+
+def observation_split(n_obs: int, comm) -> tuple[int, int]:
+    """Observations ``(lo, hi)`` of this rank: contiguous blocks, the first n_obs % R one larger."""
+    counts = _counts(n_obs, comm.world)
+    lo = sum(counts[: comm.rank])
+    return lo, lo + counts[comm.rank]
 
 
 class ShardedTarget(Target):
