@@ -9,16 +9,19 @@ torch.Size([1, 100, 2])
 
 from . import io, kernels
 from ._version import __version__
+from .crosscheck import Crosscheck, crosscheck
 from .files import load
 from .model import Latent, ObservedData, SamplerDefaults, Target
 from .race import race
 from .result import PredictiveBands, Result, predictive_interval, prior_predictive
-from .samplers import Langevin, RankFailure, Sampler, Sharding, StopRule, langevin, schedules, steppers, svgd
+from .samplers import NUTS, Langevin, RankFailure, Sampler, Sharding, StopRule, langevin, nuts, schedules, steppers, svgd
 from .stein import ksd, svgd_direction
 
 __all__ = [
+    "Crosscheck",
     "Latent",
     "Langevin",
+    "NUTS",
     "ObservedData",
     "PredictiveBands",
     "RankFailure",
@@ -28,11 +31,13 @@ __all__ = [
     "Sharding",
     "StopRule",
     "Target",
+    "crosscheck",
     "io",
     "kernels",
     "ksd",
     "langevin",
     "load",
+    "nuts",
     "predictive_interval",
     "prior_predictive",
     "race",

@@ -16,7 +16,7 @@ import traceback
 import warnings
 from pathlib import Path
 
-RUN_STEPS = 400  # the sampler's default cap (stein_torch.samplers.svgd.DEFAULT_STEPS), kept import-free
+RUN_STEPS = 1000  # the sampler's default cap (stein_torch.samplers.svgd.DEFAULT_STEPS), kept import-free
 
 __all__ = ["main"]
 

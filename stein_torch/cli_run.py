@@ -31,6 +31,7 @@ METHODS: dict[str, tuple[str, dict[str, str]]] = {
 }
 STOP_REASONS = {
     "steps": "ran every step allowed",
+    "settled": "the particles settled: their moments stopped moving and the KSD is at the level of exact draws",
     "ksd_plateau": "the kernel Stein discrepancy stopped improving",
     "ksd_tolerance": "the kernel Stein discrepancy fell below the tolerance",
     "draws": "all draws taken",
@@ -143,7 +144,8 @@ def report(run, python_warnings: list[str]) -> list[str]:
         lines.append(f"final KSD per ensemble (whitened coordinates): {values}")
     if chains > 1:
         lines.append(_rhat_line(run, chains))
-    every = [str(w) for w in run.warnings] + [w for w in python_warnings if w not in run.warnings]
+    own = [str(w) for w in run.warnings]  # the run's warnings, which it also issued as Python warnings
+    every = own + [w for w in python_warnings if w.split(": ", 1)[-1] not in own]
     if every:
         lines.append(f"warnings ({len(every)}):")
         lines.extend(f"  - {w}" for w in every)

@@ -12,12 +12,12 @@ from .checks import check_type
 from .model import Target
 from .result import Result
 from .result.files import RESULT_FORMAT
-from .samplers import Langevin, Sampler
+from .samplers import NUTS, Langevin, Sampler
 
 __all__ = ["load"]
 
 # the sampler that reads each method's checkpoints (its ``result_from_state``)
-CHECKPOINT_READERS = {"svgd": Sampler, "mala": Langevin, "ula": Langevin}
+CHECKPOINT_READERS = {"svgd": Sampler, "mala": Langevin, "ula": Langevin, "nuts": NUTS}
 
 
 def load(path, target) -> Result:

@@ -1,9 +1,9 @@
-"""Side by side on the user's own model: SVGD configurations and Langevin at equal score evaluations.
+"""Side by side on the user's own model: SVGD configurations, Langevin and NUTS at equal score evaluations.
 
 Each method runs once; along the way its output is measured at about ``checkpoints`` points spaced
-geometrically (SVGD: the starting particles, then the particles after so many steps; Langevin: the
-draws kept so far, from 10 on), so one call gives accuracy against score evaluations for a plot, and
-the final figures for a table.
+geometrically (SVGD: the starting particles, then the particles after so many steps; Langevin and
+NUTS: the draws kept so far, from 10 on), so one call gives accuracy against score evaluations for a
+plot, and the final figures for a table.
 
 Figures (every row and every checkpoint):
 
@@ -28,7 +28,7 @@ import torch
 
 from .checks import check_int, check_type
 from .model import Target
-from .samplers import Sampler, langevin
+from .samplers import NUTS, Sampler, langevin
 from .samplers.loop import run_loop
 from .samplers.precondition import LAPLACE_MAX_DIM, Affine, laplace_whitening
 from .samplers.svgd import DEFAULT_STEPS
@@ -42,6 +42,7 @@ METRIC_LABELS = {"w1": "W1 / reference sd (mean over parameters)", "mean_error":
                  "sd_ratio_max": "largest sd / reference sd"}
 SVGD_OPTIONS = {"particles", "ensembles", "kernel", "stepper", "steps", "stop", "precondition", "dtype", "init"}
 LANGEVIN_OPTIONS = {"chains", "draws", "warmup", "step_size", "precondition", "dtype", "init"}
+NUTS_OPTIONS = {"chains", "draws", "warmup", "metric", "max_depth", "target_accept", "precondition", "dtype", "init"}
 
 
 def accuracy(draws: Mapping[str, np.ndarray], reference: Mapping[str, np.ndarray]) -> dict[str, float]:
@@ -137,7 +138,7 @@ def _within_tolerance(figures: Mapping[str, float]) -> bool:
 
 def _parse_methods(methods) -> dict[str, dict]:
     if methods is None:
-        methods = ("svgd", "mala")
+        methods = ("svgd", "mala", "nuts")
     if isinstance(methods, str):
         methods = (methods,)
     if isinstance(methods, Mapping):
@@ -152,9 +153,9 @@ def _parse_methods(methods) -> dict[str, dict]:
             raise TypeError(f"methods[{label!r}] must be a dict of options, got {type(options).__qualname__}")
         options = dict(options)
         kind = options.pop("method", label)
-        allowed = SVGD_OPTIONS if kind == "svgd" else LANGEVIN_OPTIONS if kind in ("mala", "ula") else None
+        allowed = {"svgd": SVGD_OPTIONS, "mala": LANGEVIN_OPTIONS, "ula": LANGEVIN_OPTIONS, "nuts": NUTS_OPTIONS}.get(kind)
         if allowed is None:
-            raise ValueError(f"methods[{label!r}]: method must be one of 'svgd', 'mala', 'ula'; got {kind!r}")
+            raise ValueError(f"methods[{label!r}]: method must be one of 'svgd', 'mala', 'ula', 'nuts'; got {kind!r}")
         unknown = set(options) - allowed
         if unknown:
             raise ValueError(f"methods[{label!r}]: unknown options {sorted(unknown)} for {kind}; allowed {sorted(allowed)}")
@@ -240,6 +241,41 @@ def _run_langevin(target, options, budget, checkpoints, meter, seed, progress):
     return path, run
 
 
+def _run_nuts(target, options, budget, checkpoints, meter, seed, progress):
+    opts = dict(options)
+    opts.pop("method")
+    chains = opts.pop("chains", 4)
+    hooks = []
+    if budget is not None:
+        opts["draws"] = max(1, budget // chains)  # at least one evaluation per chain and transition
+
+        def spend(s):  # stop before a transition as costly as the last one would pass the budget
+            evals = s.history["grad_evals"]
+            last = evals[-1] - (evals[-2] if len(evals) > 1 else 0)
+            if s.grad_evals + last > budget:
+                s.stop_reason = "budget"
+
+        hooks.append(spend)
+    start = time.perf_counter()
+    sampler = NUTS(target, chains, seed=seed, **opts)
+    sampler.run(progress=progress, hooks=hooks)
+    run = sampler.result()
+    setup = time.perf_counter() - start - sampler.elapsed
+    warmup, kept = sampler.warmup, run.particles.shape[1]
+    if kept < 2:  # the budget ended in warm-up: no draws to measure
+        nan = float("nan")
+        empty = {"ksd": nan, "points": 0, **({} if meter.reference is None else {
+            "mean_error": nan, "sd_ratio_min": nan, "sd_ratio_max": nan, "w1": nan})}
+        return [{"grad_evals": sampler.grad_evals, "seconds": setup + sampler.elapsed, **empty}], run
+    path = []
+    for k in np.unique(np.geomspace(min(10, kept), kept, checkpoints).round().astype(int).clip(2, kept)):
+        i = warmup + int(k) - 1
+        path.append({"grad_evals": int(run.history["grad_evals"][i]),
+                     "seconds": setup + float(run.history["seconds"][i]),
+                     **meter(run.particles[:, :k].reshape(-1, target.dim))})
+    return path, run
+
+
 def race(
     target: Target,
     reference: Mapping[str, np.ndarray] | None = None,
@@ -264,14 +300,16 @@ def race(
         matrices); or an InferenceData whose ``posterior`` group holds them (chains pooled).
     budget : int, optional
         Score evaluations per method (particles x steps for SVGD, with the stop rule off unless
-        given; chains x (1 + warmup + draws) for Langevin, warmup = half). None: each method's own
-        defaults (SVGD: the default run, at most 400 steps with the default stop rule; Langevin: 1000
-        warmup + 1000 draws).
+        given; chains x (1 + warmup + draws) for Langevin, warmup = half; NUTS: its warm-up (500 by
+        default), then draws until the next transition, as costly as the last, would pass the
+        budget). None: each method's own defaults (SVGD: the default run, at most 400 steps with the
+        default stop rule; Langevin: 1000 warmup + 1000 draws; NUTS: 500 warm-up + 1000 draws).
     methods : list of str or dict of str to dict, optional
-        Names among {"svgd", "mala", "ula"}, or label -> options, e.g.
+        Names among {"svgd", "mala", "ula", "nuts"}, or label -> options, e.g.
         ``{"svgd": {}, "svgd-imq": {"method": "svgd", "kernel": st.kernels.IMQ()}, "mala":
         {"chains": 8}}`` (``method`` defaults to the label). Options are those of
-        :func:`stein_torch.svgd` / :func:`stein_torch.langevin`. Default ("svgd", "mala").
+        :func:`stein_torch.svgd` / :func:`stein_torch.langevin` / :func:`stein_torch.nuts`. Default
+        ("svgd", "mala", "nuts").
     checkpoints : int, default=20
         Measurements along each run, spaced geometrically (for :func:`plot_comparison`); SVGD adds
         one for its starting particles.
@@ -305,7 +343,7 @@ def race(
     meter = _Meter(target, reference, derived, ksd_points, _common_affine(target))
     rows = []
     for label, options in specs.items():
-        runner = _run_svgd if options["method"] == "svgd" else _run_langevin
+        runner = {"svgd": _run_svgd, "nuts": _run_nuts}.get(options["method"], _run_langevin)
         path, result = runner(target, options, budget, checkpoints, meter, seed, progress)
         row = {"method": label, **path[-1], "stop_reason": result.stop_reason}
         if reference is not None:

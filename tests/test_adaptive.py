@@ -122,7 +122,7 @@ def test_sampler_with_adaptive_stepper_counts_and_traces():
     P = torch.linalg.inv(S)
     t = st.Target(lambda x: -0.5 * (((x - m) @ P) * (x - m)).sum(-1), dim=2)
     stepper = st.steppers.Adaptive(rtol=1e-3, atol=1e-3)
-    sampler = st.Sampler(t, 100, stepper=stepper, seed=0)
+    sampler = st.Sampler(t, 100, stepper=stepper, seed=0, stop=False)  # all 150 steps: the counts are the point
     evals0 = sampler.grad_evals
     sampler.run(150, progress=False)
     run = sampler.result()

@@ -73,7 +73,8 @@ def test_resume_restores_the_setup_instead_of_recomputing_it(tmp_path, monkeypat
     def no_setup(*args, **kwargs):
         raise AssertionError("the mode search ran again on resume")
 
-    monkeypatch.setattr(setup_module, "laplace_whitening", no_setup)  # mode search + Laplace whitening
+    monkeypatch.setattr(setup_module, "laplace_whitening", no_setup)  # single mode search + Laplace whitening
+    monkeypatch.setattr(setup_module, "search_modes", no_setup)  # the default search from several starts
     resumed = st.svgd(make_target(), steps=STEPS, resume=path, **{**RUN, "seed": None})  # seed from the file
     assert_same_run(resumed, uninterrupted())
 
@@ -174,13 +175,14 @@ def test_state_dict_collects_every_part_that_has_one(tmp_path):
     run.rule = CountingRule()
     run.rule.seen, run.rule.history = 7, np.arange(3.0)
     state = run.state_dict()
-    assert set(state["components"]) == {"kernel", "stepper", "stop_rule", "rule"}  # stop rule: on by default
+    # stop rule: on by default; record: what the warnings read (set-up outcome, moments)
+    assert set(state["components"]) == {"kernel", "stepper", "stop_rule", "record", "rule"}
     path = tmp_path / "state.pt"
     run.save(path)
     loaded = st_io.load_checkpoint(path)
 
     fresh = st.Sampler(target, 8, seed=0)
-    with pytest.raises(ValueError, match=r"holds state for \['kernel', 'rule', 'stepper', 'stop_rule'\]"):
+    with pytest.raises(ValueError, match=r"holds state for \['kernel', 'record', 'rule', 'stepper', 'stop_rule'\]"):
         fresh.load_state_dict(loaded)
     fresh.rule = CountingRule()
     fresh.load_state_dict(loaded)

@@ -203,7 +203,7 @@ def test_bench_core_quick_prints_every_row(capsys, one_thread):
     code = main(["bench", "core", "--quick"])
     printed = capsys.readouterr().out
     assert code == 0  # --quick never fails on figures (sizes too small to mean anything)
-    for tag in ("(a)", "(b)", "(c)", "(d)"):
+    for tag in ("(a)", "(b)", "(c)", "(d)", "(e)"):
         assert tag in printed
     assert "naive direction matches the engine to" in printed
     # the naive per-particle direction equals the batched engine (common practice: compare two
@@ -233,7 +233,7 @@ def test_bench_passes_suite_options_through(capsys, one_thread, monkeypatch):
         (["demo", "--seed", "-1"], "non-negative"),
         (["run", "no_such_model.py"], "no such file"),
         (["run", "--steps", "5"], "MODEL.py"),
-        (["bench", "nosuch"], "core, accuracy, kernels, module, distributed, all"),
+        (["bench", "nosuch"], "core, accuracy, kernels, module, nuts, distributed, all"),
         (["demo", "--names", "x"], "unrecognized arguments: --names x"),
         (["bench", "core", "module", "--json"], "name a single suite"),
     ],

@@ -31,7 +31,9 @@ def scaled_normal(x):
 
 
 def run_kwargs(**extra):
-    return dict(particles=20, steps=STEPS, seed=5, precondition=None, progress=False, **extra)
+    # stop=False: these runs are about Ctrl-C, so they take all STEPS steps (the default rule would end
+    # a 3-D Gaussian run within them); resuming with the rule on is checked in test_checkpoint.py
+    return dict(particles=20, steps=STEPS, seed=5, precondition=None, progress=False, stop=False, **extra)
 
 
 def test_setup_calls_are_what_the_trigger_assumes():
@@ -97,7 +99,7 @@ CHILD = textwrap.dedent(
             sys.stdin.readline()  # hold here until the parent has sent its signals
         return -0.5 * (x ** 2 * torch.arange(1, 4, dtype=x.dtype)).sum(-1)
 
-    kwargs = dict(particles=20, steps=steps, seed=5, precondition=None, progress=False)
+    kwargs = dict(particles=20, steps=steps, seed=5, precondition=None, progress=False, stop=False)
     target = st.Target(log_prob, dim=3)
     if mode in ("interrupt", "abort"):
         run = st.svgd(target, checkpoint=path, checkpoint_every=4, **kwargs)

@@ -19,6 +19,10 @@ Rows printed, all measured in one run (medians of interleaved repeats after warm
     direction with a Python loop over particles (N = 256, d = 20, Bayesian logistic regression on
     invented data). The naive step does less work (no linear kernel, no checks). Medians of 31
     interleaved repeats: the ratio moves by about +-10% between runs on a shared machine. Floor 20x.
+(e) a default ``st.svgd`` run of the README's quickstart model against the same run with one torch
+    thread set by the caller, each in a fresh subprocess while another process keeps a core busy
+    (:mod:`stein_torch.benchmarks.threads`); also the run with torch's default thread count, what a run
+    used before the sampler chose its threads. Medians of interleaved repeats. Bound 1.2x.
 """
 
 from __future__ import annotations
@@ -42,9 +46,10 @@ from stein_torch.stein import Scratch, svgd_direction
 
 __all__ = ["main", "build_parser"]
 
-FULL = {"directions": [(4096, 64), (1024, 16)], "memory": (50_000, 10), "loop": (256, 20), "repeats": 15}
-QUICK = {"directions": [(256, 8), (64, 4)], "memory": (2_000, 10), "loop": (32, 4), "repeats": 3}
-BOUNDS = {"direction": 3.0, "memory_gb": 3.0, "loop": 20.0}
+FULL = {"directions": [(4096, 64), (1024, 16)], "memory": (50_000, 10), "loop": (256, 20), "repeats": 15,
+        "threads": (150, 3)}
+QUICK = {"directions": [(256, 8), (64, 4)], "memory": (2_000, 10), "loop": (32, 4), "repeats": 3, "threads": (5, 1)}
+BOUNDS = {"direction": 3.0, "memory_gb": 3.0, "loop": 20.0, "threads": 1.2}
 
 
 def _interleaved_medians(
@@ -265,6 +270,17 @@ def main(args: list[str]) -> int:
     print(
         f"    median seconds per step: stein_torch {s['step']:.4f}, naive loop {s['naive']:.4f}; "
         f"naive direction matches the engine to {s['agreement']:.1e} (relative)"
+    )
+
+    from .threads import thread_ratios
+
+    steps, repeats = sizes["threads"]
+    t = thread_ratios(steps, repeats)
+    row("(e) default threads / one thread, quickstart, 1 busy", t["default_over_one"], float("nan"), BOUNDS["threads"])
+    sec = t["seconds"]
+    print(
+        f"    median seconds: default {sec['default']:.2f} ({t['default_threads']} thread(s) chosen), one thread "
+        f"{sec['one']:.2f}, torch's {t['torch_threads']} threads {sec['torch']:.2f} ({t['torch_over_one']:.2f}x)"
     )
     return 1 if failures else 0
 

@@ -95,6 +95,7 @@ class Batched:
         self.origin = tuple(origin) or (fn,)
         self.mode: str | None = None
         self._warned = False
+        self.warning: str | None = None  # the loop warning, once issued (at the user's line)
 
     def __call__(self, arg, batch_shape: torch.Size) -> torch.Tensor:
         """Values of the function, shape ``batch_shape``, for ``arg`` with those leading dimensions."""
@@ -178,11 +179,13 @@ class Batched:
                 return "loop", None
             self._warned = True
             filename, line = user_location(vmap_error, self.origin)
-            warnings.warn_explicit(
+            self.warning = (
                 f"{self.name} is written for one value and torch.func.vmap could not vectorise it "
                 f"({type(vmap_error).__name__} at {filename}:{line}); calling it once per particle in a Python "
-                "loop, which is slow. Write it for a batch of values (leading dimensions) to make it fast.",
-                RuntimeWarning, filename, line, module=os.path.splitext(os.path.basename(filename))[0],
+                "loop, which is slow. Write it for a batch of values (leading dimensions) to make it fast."
+            )
+            warnings.warn_explicit(
+                self.warning, RuntimeWarning, filename, line, module=os.path.splitext(os.path.basename(filename))[0],
             )
             return "loop", None
 

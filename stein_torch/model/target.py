@@ -228,6 +228,17 @@ class Target:
         return torch.cat(parts, -1)
 
     # ------------------------------------------------------------------ evaluation
+    @property
+    def evaluation_mode(self) -> str | None:
+        """How the user's function is called: "batched", "vmap", "loop" (one value at a time), or None
+        before the first call."""
+        return self._user.mode
+
+    @property
+    def evaluation_warning(self) -> str | None:
+        """The warning issued (once, at the user's line) when the log density is called in a loop."""
+        return self._user.warning
+
     def log_prob(self, z: torch.Tensor) -> torch.Tensor:
         """Log density on the unconstrained space (log-Jacobian included).
 

@@ -37,7 +37,7 @@ def to_inference_data(result, *, coords=None, dims=None, predictive_seed=None, *
     attrs.update({k: attr_value(v) for k, v in result.settings.items()})
     attrs["stop_reason"] = result.stop_reason
     if result.warnings:
-        attrs["warnings"] = np.asarray([str(w) for w in result.warnings])
+        attrs["warnings"] = np.asarray([str(w) for w in result.warnings], dtype=object)  # NetCDF: variable-length strings
     if result.target.data is not None:
         if result._likelihood is None:  # pointwise terms on the full data, computed once
             result._likelihood = likelihood_groups(result.target, result.particles)

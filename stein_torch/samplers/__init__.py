@@ -1,4 +1,4 @@
-"""Samplers on a Target: SVGD, Langevin (MALA/ULA); their shared set-up, fault containment and loop.
+"""Samplers on a Target: SVGD, NUTS, Langevin (MALA/ULA); their shared set-up, fault containment and loop.
 
 Every sampler follows the same path: :mod:`.setup` (settings, whitening, starting points) ->
 :mod:`.faults` (contained evaluation) -> its own ``step()`` -> :mod:`.loop` (progress, Ctrl-C,
@@ -9,7 +9,9 @@ from . import schedules, steppers
 from .comm import RankFailure
 from .distributed import Sharding
 from .langevin import Langevin, langevin
+from .nuts import NUTS, nuts
 from .stopping import StopRule
 from .svgd import Sampler, svgd
 
-__all__ = ["svgd", "Sampler", "langevin", "Langevin", "StopRule", "Sharding", "RankFailure", "schedules", "steppers"]
+__all__ = ["svgd", "Sampler", "langevin", "Langevin", "nuts", "NUTS", "StopRule", "Sharding", "RankFailure",
+           "schedules", "steppers"]

@@ -4,13 +4,19 @@ Every sampler evaluates its points through :class:`Evaluator`, which returns the
 score in the sampler's whitened coordinates and a mask of faulty points. A point is faulty when its
 position, log density or score is not finite, or when the user's function raises for it; the
 sampler decides what a fault means (SVGD shrinks the particle's step, MCMC rejects the proposal).
+
+A density that is NaN or -inf beyond a boundary the user did not declare is a *wall*: SVGD particles
+that try to cross it are put back, and the run goes on (a warning says so, :func:`wall_message`).
+Only when faults keep a whole ensemble from moving (every particle put back) for ``patience``
+consecutive steps does the run stop, with :class:`StuckEnsembleError` carrying the result so far.
 """
 
 from __future__ import annotations
 
 import torch
 
-__all__ = ["Evaluator", "shrink_faulty_steps", "persistent_fault_message", "MAX_BACKTRACK"]
+__all__ = ["Evaluator", "shrink_faulty_steps", "persistent_fault_message", "wall_message", "StuckEnsembleError",
+           "MAX_BACKTRACK"]
 
 MAX_BACKTRACK = 10  # halvings of a faulty particle's step before it is put back where it was
 
@@ -111,11 +117,11 @@ def shrink_faulty_steps(u_old, lp_old, score_old, u_new, lp, score, bad, evaluat
     u_new, lp, score
         The particles after containment: faulty ones moved back along their own step by a power of
         two, or left where they were; the others untouched, bit for bit.
-    reverted : int
+    reverted : Tensor of shape (B, N), bool
         Particles put back where they were.
     """
     if not bool(bad.any()):
-        return u_new, lp, score, 0
+        return u_new, lp, score, torch.zeros_like(bad)
     for _ in range(MAX_BACKTRACK):
         if not bad.any():
             break
@@ -124,22 +130,53 @@ def shrink_faulty_steps(u_old, lp_old, score_old, u_new, lp, score, bad, evaluat
         lp = torch.where(bad, lp_b, lp)
         score = torch.where(bad[..., None], score_b, score)
         bad = bad & bad_b
-    reverted = int(bad.sum())
-    if reverted:  # give up on this step for these particles: they stay where they were
+    if bool(bad.any()):  # give up on this step for these particles: they stay where they were
         u_new = torch.where(bad[..., None], u_old, u_new)
         lp = torch.where(bad, lp_old, lp)
         score = torch.where(bad[..., None], score_old, score)
-    return u_new, lp, score, reverted
+    return u_new, lp, score, bad
+
+
+HINT = (
+    "Hint: give latents with a restricted domain a support (st.Latent(support=...)) so the sampler "
+    "never leaves it, make the log density finite wherever it is called, or lower the step size."
+)
+
+
+def _raised(last_error) -> str:
+    return f" Last error raised by the log density: {type(last_error).__name__}: {last_error}." if last_error else ""
 
 
 def persistent_fault_message(step: int, patience: int, faults: int, reverted: int, total: int, last_error) -> str:
-    """The error of a run whose faults persisted for ``patience`` steps, with what to do about it."""
-    raised = f" Last error raised by the log density: {type(last_error).__name__}: {last_error}." if last_error else ""
+    """The error of a run whose faults kept a whole ensemble from moving for ``patience`` steps."""
     return (
-        f"step {step}: the log density or its score was NaN/inf (or raised) for some "
-        f"particles in each of the last {patience} steps; in this step {faults} of {total} "
-        f"particles were faulty and {reverted} could not be moved even with a step shrunk "
-        f"{2**MAX_BACKTRACK}-fold.{raised} Hint: give latents with a restricted domain a "
-        "support (st.Latent(support=...)) so the sampler never leaves it, make the log density "
-        "finite wherever it is called, or lower the step size."
+        f"step {step}: the log density or its score was NaN/inf (or raised) for every particle of an "
+        f"ensemble in each of the last {patience} steps, so the ensemble could not move; in this step "
+        f"{faults} of {total} particles were faulty and {reverted} could not be moved even with a step "
+        f"shrunk {2**MAX_BACKTRACK}-fold.{_raised(last_error)} The result so far is attached to this "
+        f"error as .result (and written to the checkpoint when one is set). {HINT}"
     )
+
+
+def wall_message(step: int, faulty_steps: int, window: int, faults: int, reverted: int, total: int, last_error) -> str:
+    """The warning of a run whose particles kept running into a region where the density is not finite."""
+    return (
+        f"particles are held at a region where the log density is NaN/inf (or raises): in {faulty_steps} of "
+        f"the last {window} steps up to step {step} some of {total} particles stepped into it ({faults} "
+        f"steps shrunk, {reverted} undone), so particles may be piled against that boundary and the spread "
+        f"there is not the posterior's.{_raised(last_error)} {HINT}"
+    )
+
+
+class StuckEnsembleError(FloatingPointError):
+    """Faults kept a whole ensemble from moving; ``result`` holds the particles before the failing step.
+
+    Attributes
+    ----------
+    result : Result or None
+        The run so far (the particles after the last completed step, with its warnings).
+    """
+
+    def __init__(self, message: str, result=None):
+        super().__init__(message)
+        self.result = result

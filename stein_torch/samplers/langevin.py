@@ -99,7 +99,8 @@ class Langevin:
             # set to estimate from here, so it means no whitening, as None does)
             if self.precondition == "covariance":
                 setup.precondition = None
-            self.affine, self.laplace_ok, self.u, self.lp, self.score = starting_points(setup, self.evaluate, (self.chains,))
+            start = starting_points(setup, self.evaluate, (self.chains,), starts=1)  # one search, as before
+            self.affine, self.laplace_ok, self.u, self.lp, self.score = start.affine, start.laplace_ok, start.u, start.lp, start.score
         else:
             self.load_state_dict(state, argname="resume")
 

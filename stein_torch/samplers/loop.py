@@ -95,6 +95,10 @@ def run_loop(
             if interrupt.aborted:
                 raise
             sampler.stop_reason, consistent = "interrupted", False
+        except FloatingPointError as err:  # a sampler that gives up keeps its state before the failing step
+            if checkpoint is not None and getattr(err, "result", None) is not None:
+                sampler.save(checkpoint)
+            raise
         if checkpoint is not None and saved_at != sampler.step_count:
             if consistent:
                 sampler.save(checkpoint)

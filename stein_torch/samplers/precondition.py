@@ -15,10 +15,11 @@ import torch
 
 from ..model import Target
 
-__all__ = ["Affine", "laplace_whitening", "covariance_affine", "rewhiten_due", "LAPLACE_MAX_DIM"]
+__all__ = ["Affine", "laplace_whitening", "covariance_affine", "rewhiten_due", "LAPLACE_MAX_DIM", "REWHITEN_LAST"]
 
 LAPLACE_MAX_DIM = 1000  # dense Hessian whitening up to this many coordinates
-REWHITEN_FIRST = 25  # SVGD re-whitens by the particles' covariance at steps 25, 50, 100, 200, ...
+REWHITEN_FIRST = 25  # SVGD re-whitens by the particles' covariance at steps 25, 50, 100, 200, 400
+REWHITEN_LAST = 400  # and not after: a re-whitening at step 800 threw the 2-D banana's settled set off
 
 
 @dataclass
@@ -227,8 +228,8 @@ def covariance_affine(u: torch.Tensor, affine: Affine) -> Affine:
 
 
 def rewhiten_due(step: int) -> bool:
-    """Whether SVGD re-whitens after ``step`` steps: at 25, 50, 100, 200, ... (doubling gaps)."""
-    if step < REWHITEN_FIRST or step % REWHITEN_FIRST:
+    """Whether SVGD re-whitens after ``step`` steps: at 25, 50, 100, 200, 400 (doubling gaps)."""
+    if step < REWHITEN_FIRST or step > REWHITEN_LAST or step % REWHITEN_FIRST:
         return False
     ratio = step // REWHITEN_FIRST
     return ratio & (ratio - 1) == 0

@@ -16,12 +16,14 @@ import torch
 from ..checks import check_choice, check_device, check_dtype, check_int, check_type
 from ..model import Target
 from .faults import Evaluator
+from .modes import STARTS, ModeSearch, allocate, search_modes
 from .precondition import LAPLACE_MAX_DIM, Affine, laplace_whitening
 
-__all__ = ["Setup", "configure", "starting_points", "PRECONDITIONS"]
+__all__ = ["Setup", "Start", "configure", "starting_points", "PRECONDITIONS"]
 
 PRECONDITIONS = ("auto", "laplace", "covariance", None)
 PULL_IN = 20  # halvings toward the mode for default starting draws where the model is not finite
+SEARCH_BUDGET_PER_PARTICLE = 25  # the mode search starts no new search after 25 x particles evaluations
 
 
 @dataclass
@@ -49,6 +51,36 @@ class Setup:
     generator: torch.Generator
     precondition: str | None
     init: object
+
+
+@dataclass
+class Start:
+    """The set-up's outcome: whitening, starting points and what the mode search saw.
+
+    Attributes
+    ----------
+    affine : Affine
+    laplace_ok : bool
+        Whether the curvature at the mode was negative definite.
+    u, lp, score : Tensors of shape (*lead, d), (*lead,), (*lead, d)
+        Starting points (whitened), their log densities and whitened scores.
+    search : ModeSearch or None
+        The modes found (None when no mode search ran).
+    precondition : str or None
+        "covariance" when the mode search found no mode (a density unbounded or undefined at every
+        end point), else the setting asked for.
+    mode_counts : list of int
+        Starting particles per kept mode (per ensemble), best mode first.
+    """
+
+    affine: Affine
+    laplace_ok: bool
+    u: torch.Tensor
+    lp: torch.Tensor
+    score: torch.Tensor
+    search: ModeSearch | None = None
+    precondition: str | None = None
+    mode_counts: list | None = None
 
 
 def configure(
@@ -110,18 +142,15 @@ def user_start(setup: Setup, lead: tuple[int, ...]) -> torch.Tensor | None:
     return z
 
 
-def starting_points(setup: Setup, evaluate: Evaluator, lead: tuple[int, ...]):
+def starting_points(setup: Setup, evaluate: Evaluator, lead: tuple[int, ...], starts: int = STARTS) -> Start:
     """Whitening and starting points of shape (*lead, dim).
 
-    Returns
-    -------
-    affine : Affine
-        z = shift + L u: the Laplace approximation at the mode when ``precondition == "laplace"``
-        and a finite mode was found, else the identity.
-    laplace_ok : bool
-        Whether the curvature at the mode was negative definite.
-    u, lp, score, bad
-        Starting points in whitened coordinates, their log densities, whitened scores and faults.
+    With the default start (no ``init``) and Laplace preconditioning, the mode search runs from
+    ``starts`` points (:mod:`stein_torch.samplers.modes`); the particles are split among the modes
+    kept in proportion to their Laplace masses, and the coordinates are whitened by the highest
+    mode's Laplace map. The best mode's particles are the draws a single search would give, so a
+    posterior with one mode starts exactly as before. When no mode is found the run falls back to
+    covariance whitening from standard normal draws.
 
     Raises
     ------
@@ -133,8 +162,19 @@ def starting_points(setup: Setup, evaluate: Evaluator, lead: tuple[int, ...]):
     target, dim = setup.target, setup.target.dim
     user_z = user_start(setup, lead)
     affine = Affine.identity(dim, setup.dtype, setup.device)
-    laplace_ok = False
-    if setup.precondition == "laplace":
+    laplace_ok, search, precondition, counts = False, None, setup.precondition, None
+    own_start = user_z is None and setup.init != "prior"
+    if setup.precondition == "laplace" and own_start and starts > 1:
+        origin = torch.zeros(dim, dtype=setup.dtype, device=setup.device)
+        extra = torch.Generator().manual_seed((setup.seed + 2) % 2**63)  # not the run's stream
+        search = search_modes(target, origin, starts, extra, SEARCH_BUDGET_PER_PARTICLE * lead[-1])
+        kept = search.kept(lead[-1])
+        if kept:
+            affine, laplace_ok = kept[0].affine, kept[0].curvature_ok
+            counts = allocate([m.log_mass for m in kept], lead[-1])
+        else:
+            precondition = "covariance"
+    elif setup.precondition == "laplace":
         start = user_z.reshape(-1, dim).mean(0) if user_z is not None else torch.zeros(dim, dtype=setup.dtype, device=setup.device)
         found, laplace_ok = laplace_whitening(target, start)
         if found is not None:
@@ -150,6 +190,8 @@ def starting_points(setup: Setup, evaluate: Evaluator, lead: tuple[int, ...]):
         u = affine.to_u(z)
     else:  # draws from the Laplace approximation (or a standard normal around the origin)
         u = torch.randn((*lead, dim), generator=setup.generator, dtype=setup.dtype).to(setup.device)
+        if counts is not None and len(counts) > 1:
+            u = _place_on_modes(u, kept, counts, affine, extra)
     lp, score, bad = evaluate(u, affine, first=True)
     for _ in range(PULL_IN):
         if not bad.any():
@@ -166,4 +208,18 @@ def starting_points(setup: Setup, evaluate: Evaluator, lead: tuple[int, ...]):
             "init: the log density is not finite around the mode; check the model for NaN/inf "
             f"({int(bad.sum())} of {bad.numel()} starting points faulty)"
         )
-    return affine, laplace_ok, u, lp, score
+    return Start(affine, laplace_ok, u, lp, score, search, precondition, counts)
+
+
+def _place_on_modes(u: torch.Tensor, kept: list, counts: list[int], affine: Affine, generator) -> torch.Tensor:
+    """Move the last particles of each ensemble to the other kept modes: ``counts[k]`` draws from
+    mode k's Laplace approximation (k >= 1), in the coordinates of ``affine``."""
+    u = u.clone()
+    end = u.shape[-2]
+    for mode, count in zip(kept[1:], counts[1:]):
+        if count == 0:
+            continue
+        eps = torch.randn((*u.shape[:-2], count, u.shape[-1]), generator=generator, dtype=u.dtype).to(u.device)
+        u[..., end - count:end, :] = affine.to_u(mode.affine.to_z(eps))
+        end -= count
+    return u

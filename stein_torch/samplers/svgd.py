@@ -7,6 +7,7 @@ Data flow: Target -> set-up (whitening, starting particles) -> loop of
 from __future__ import annotations
 
 import math
+import warnings
 from typing import Callable, Mapping
 
 import numpy as np
@@ -14,47 +15,30 @@ import torch
 
 from .. import io
 from ..checks import check_int, check_type
-from ..kernels import IMQ, Kernel, Linear
+from ..kernels import Kernel
 from ..result import Result
 from ..stein import Scratch, svgd_direction
 from ..stein.ksd import default_ksd_kernel, ksd_from_sums, ksd_sums
 from .axis import ParticleAxis
 from .distributed import sharding
-from .faults import Evaluator, persistent_fault_message, shrink_faulty_steps
+from .faults import Evaluator, StuckEnsembleError, persistent_fault_message, shrink_faulty_steps
 from .loop import append_history, check_run_options, run_loop
+from .monitor import Watch
 from .precondition import Affine, covariance_affine, rewhiten_due
+from .record import RunRecord, svgd_result, svgd_result_from_state
 from .schedules import as_drive
 from .setup import configure, starting_points
 from .state import check_common, common_state, plain_repr, read_affine, restore_common, restore_parts, state_tensor
-from .steppers import GradientStep, Stepper, as_stepper
-from .stopping import StopRule, as_stop_rule
+from .steppers import as_stepper
+from .stopping import KSDPlateau, StopRule, as_stop_rule
+from .svgd_defaults import default_kernel, default_stepper
+from .threads import choose_threads, run_threads
 
 __all__ = ["svgd", "Sampler", "default_kernel", "default_stepper"]
 
-FAULT_PATIENCE = 25  # consecutive steps with faults before the run gives up
-DEFAULT_STEPS = 400  # most steps of a default run (the stop rule usually ends it at 300-400)
-KSD_EVERY = 10  # steps between KSD records without a stop rule
-
-
-def default_kernel() -> Kernel:
-    """IMQ with the median-heuristic bandwidth plus a saturating linear kernel on standardised
-    coordinates (radius 2).
-
-    Chosen on the reference posteriors (docs/defaults.md): the linear part keeps the spread in
-    higher dimension (moment matching), the IMQ's long range keeps isolated particles coupled to
-    the rest, and the saturation keeps heavy tails from being pushed outwards.
-    """
-    return IMQ() + Linear(radius=2.0)
-
-
-def default_stepper() -> Stepper:
-    """Plain gradient steps of 0.1 in whitened coordinates, no particle moving more than 0.3 a step.
-
-    Steps proportional to the direction converge to the fixed point; per-coordinate adaptive rules
-    (Adam, RMSprop) keep a jitter of the size of their step and, on heavy-tailed posteriors, were
-    seen to let tail particles wander (docs/defaults.md).
-    """
-    return GradientStep(0.1, max_move=0.3)
+FAULT_PATIENCE = 25  # consecutive steps in which faults kept a whole ensemble from moving before the run gives up
+DEFAULT_STEPS = 1000  # most steps of a default run (the stop rule ends it when the particles have settled)
+KSD_EVERY = 10  # steps between KSD records (and the moment records the warnings read)
 
 
 class Sampler:
@@ -83,14 +67,17 @@ class Sampler:
         device=None,
         state: Mapping | None = None,
         anneal=None,
-        stop: StopRule | bool | None = None,
+        stop: StopRule | KSDPlateau | bool | None = None,
+        threads: int | None = None,
         axis: ParticleAxis | None = None,
     ):
         setup = configure(target, init=init, dtype=dtype, precondition=precondition, seed=seed, device=device, state=state)
         self.target, self.dtype, self.device = setup.target, setup.dtype, setup.device
         self.seed, self.generator, self.precondition = setup.seed, setup.generator, setup.precondition
+        self.precondition_asked = setup.precondition  # the setting; precondition: what the set-up could do
         self.n = check_int(particles, "particles")
         self.ensembles = check_int(ensembles, "ensembles")
+        self.threads = choose_threads(self.ensembles, self.n, target.dim, threads)  # torch threads during the run
         defaults = target.defaults
         if kernel is None and defaults.kernel is not None:
             kernel = defaults.kernel()
@@ -105,18 +92,22 @@ class Sampler:
         if self.data_stream is not None:  # minibatch shuffles: their own stream from the seed
             self.data_stream.start(torch.Generator().manual_seed(self.seed + 1))
         self.stop_rule = as_stop_rule(stop)
-        self.ksd_every = self.stop_rule.every if self.stop_rule is not None else KSD_EVERY
+        self.ksd_every = KSD_EVERY
         self.anneal = anneal
         self.drive: Callable[[int], float] = as_drive(anneal)
         self.stop_reason = self.finished_reason
         self.step_count = 0
         self.history: dict[str, list] = {}
-        self._fault_streak = 0
+        self._fault_streak, self.last_fault_error = 0, None
         self._last_velocity_eval = None  # (u, lp, score, bad) of the latest velocity call
+        self.record = RunRecord(self.n)  # what the warnings read (set-up outcome, moments every KSD_EVERY steps)
         if state is None:
-            lead = (self.ensembles, self.n)
-            evaluate = lambda u, affine, first=False: self._evaluate(u, affine=affine, first=first)  # noqa: E731
-            self.affine, self.laplace_ok, self.u, self.lp, self.score = starting_points(setup, evaluate, lead)
+            with run_threads(self.threads):
+                evaluate = lambda u, affine, first=False: self._evaluate(u, affine=affine, first=first)  # noqa: E731
+                start = starting_points(setup, evaluate, (self.ensembles, self.n))
+            self.affine, self.laplace_ok, self.u, self.lp, self.score = start.affine, start.laplace_ok, start.u, start.lp, start.score
+            self.precondition = start.precondition
+            self.record.note_start(start, self.n)
             self.stepper.bind(self.u)
         else:  # resuming: the set-up (mode, whitening) comes from the checkpoint, not recomputed
             self.load_state_dict(state, argname="resume")
@@ -173,6 +164,12 @@ class Sampler:
     def _step(self) -> None:
         drive = self.drive(self.step_count)
         phi = self.direction(self.u, self.score, self.lp)
+        if self.step_count % KSD_EVERY == 0:
+            self.record.note_moments(self.step_count, self.affine.to_z(self.u))
+        if self.stop_rule is not None and self.stop_rule.check(self.step_count, Watch(  # before moving the particles
+                self.u, self.score, phi, self.affine, self.stepper.step_size, self.ksd, self.axis.rows, self.axis.sum)):
+            self.stop_reason = self.stop_rule.reason
+            return
         self._last_velocity_eval = None
         u_new = self.stepper.step(self.u, phi, self._velocity)
         cached, self._last_velocity_eval = self._last_velocity_eval, None
@@ -181,16 +178,20 @@ class Sampler:
         else:
             lp, score, bad = self._evaluate(u_new)
         faults = int(bad.sum())
-        u_new, lp, score, reverted = shrink_faulty_steps(
+        u_new, lp, score, put_back = shrink_faulty_steps(
             self.u, self.lp, self.score, u_new, lp, score, bad, lambda u, mask: self._evaluate(u, mask=mask)
         )
-        self._fault_streak = self._fault_streak + 1 if faults else 0
-        if not faults:
+        reverted = int(put_back.sum())
+        self._fault_streak = self._fault_streak + 1 if bool(put_back.all(-1).any()) else 0  # a whole ensemble kept in place
+        if faults:
+            self.last_fault_error = self.evaluate.last_error
+        else:
             self.evaluate.last_error = None
         if self._fault_streak >= FAULT_PATIENCE:
             message = persistent_fault_message(self.step_count + 1, FAULT_PATIENCE, faults, reverted, bad.numel(),
                                                self.evaluate.last_error)
-            raise FloatingPointError(message) from self.evaluate.last_error
+            self.stop_reason = "faults"
+            raise StuckEnsembleError(message, self.result()) from self.evaluate.last_error
         self.u, self.lp, self.score = u_new, lp, score
         self.step_count += 1
         rewhiten = self.precondition in ("laplace", "covariance") and rewhiten_due(self.step_count)
@@ -211,6 +212,8 @@ class Sampler:
         self.u = self.affine.to_u(z)
         self.score = self.affine.score_u(score_z)
         self.stepper.rebind(self.u)
+        if hasattr(self.stop_rule, "restart"):
+            self.stop_rule.restart(self.step_count)
 
     def _record(self, **figures):
         row = {
@@ -228,8 +231,6 @@ class Sampler:
             row["bandwidth"] = float(self.kernel.last_bandwidth.mean())
         if self.step_count % self.ksd_every == 0:  # KSD on whitened coordinates, from the scores at hand
             row["ksd"] = self.ksd().cpu().numpy()
-            if self.stop_rule is not None and self.stop_rule.update(self.step_count, row["ksd"]):
-                self.stop_reason = self.stop_rule.reason
         else:
             row["ksd"] = np.full(self.ensembles, np.nan)
         append_history(self.history, row)
@@ -246,8 +247,10 @@ class Sampler:
                 "ksd": f"{float(np.max(self.history['ksd'][-1])):.3g}"}
 
     def run(self, steps: int, progress: bool | None = None, *, checkpoint=None, checkpoint_every: int | None = None) -> "Sampler":
-        """Take ``steps`` more steps (see :func:`stein_torch.samplers.loop.run_loop`)."""
-        run_loop(self, steps, progress=progress, checkpoint=checkpoint, checkpoint_every=checkpoint_every)
+        """Take ``steps`` more steps (see :func:`stein_torch.samplers.loop.run_loop`), with the run's
+        torch threads (:mod:`stein_torch.samplers.threads`)."""
+        with run_threads(self.threads):
+            run_loop(self, steps, progress=progress, checkpoint=checkpoint, checkpoint_every=checkpoint_every)
         return self
 
     # ------------------------------------------------------------------ state
@@ -255,7 +258,7 @@ class Sampler:
         """Settings a continued run must share with the saved one."""
         return {
             "particles": self.n, "ensembles": self.ensembles, "dtype": str(self.dtype).replace("torch.", ""),
-            "precondition": str(self.precondition), "seed": self.seed, "kernel": plain_repr(self.kernel),
+            "precondition": str(self.precondition_asked), "seed": self.seed, "kernel": plain_repr(self.kernel),
             "stepper": plain_repr(self.stepper),
         }
 
@@ -268,6 +271,7 @@ class Sampler:
         state.update({
             "u": self.u.detach().clone(), "lp": self.lp.detach().clone(), "score": self.score.detach().clone(),
             "affine": self.affine.state_dict(), "laplace_ok": bool(self.laplace_ok), "fault_streak": self._fault_streak,
+            "precondition": str(self.precondition),
         })
         return state
 
@@ -282,6 +286,8 @@ class Sampler:
         self.affine, self.laplace_ok = affine, bool(state["laplace_ok"])
         self.u, self.lp, self.score = u, lp, score
         self._fault_streak = int(state["fault_streak"])
+        if state.get("precondition") in ("laplace", "covariance", "None"):
+            self.precondition = None if state["precondition"] == "None" else state["precondition"]
         self.stepper.bind(self.u)
         restore_parts(state, parts)  # the step rule's own state after bind()
 
@@ -293,34 +299,10 @@ class Sampler:
 
     # ------------------------------------------------------------------ output
     def result(self) -> Result:
-        """The current particles as a :class:`Result`."""
-        z = self.affine.to_z(self.u).detach()
-        lp = self.lp.detach().clone()
-        data = self.data_stream
-        if data is not None and data.batch_size is not None:  # report the full-data log density
-            from ..model.data import full_log_prob
+        """The current particles as a :class:`Result`, with the run's warnings."""
+        return svgd_result(self)
 
-            lp = self.axis.gather(full_log_prob(self.target, z[:, self.axis.rows]))
-        history = {k: np.asarray(v) for k, v in self.history.items()}
-        settings = {
-            "method": "svgd", "kernel": repr(self.kernel), "stepper": repr(self.stepper), "steps": self.step_count,
-            "particles": self.n, "ensembles": self.ensembles, "precondition": str(self.precondition),
-            "seed": self.seed, "dtype": str(self.dtype).replace("torch.", ""), "grad_evals": self.grad_evals,
-            "anneal": repr(self.anneal), "stop_rule": repr(self.stop_rule),
-            "ksd": self.ksd().cpu().tolist(),  # final KSD per ensemble, whitened coordinates
-        }
-        if data is not None:
-            settings["batch_size"] = str(data.batch_size)
-        return Result(self.target, z, lp, history, settings, self.stop_reason)
-
-    @staticmethod
-    def result_from_state(target, state: Mapping) -> Result:
-        """The particles of a checkpoint as a :class:`Result` (no set-up, no step)."""
-        affine = Affine.from_state_dict(state["affine"])
-        z = affine.to_z(state["u"])
-        history = {k: np.asarray(v) for k, v in state["history"].items()}
-        settings = {**state["settings"], "method": "svgd", "steps": state["step"], "grad_evals": state["grad_evals"]}
-        return Result(target, z, state["lp"], history, settings, state.get("stop_reason", "checkpoint"))
+    result_from_state = staticmethod(svgd_result_from_state)  # a checkpoint as a Result (no set-up, no step)
 
 
 def svgd(
@@ -341,7 +323,8 @@ def svgd(
     checkpoint_every: int | None = None,
     resume=None,
     anneal=None,
-    stop: StopRule | bool | None = None,
+    stop: StopRule | KSDPlateau | bool | None = None,
+    threads: int | None = None,
     distributed=None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
@@ -352,8 +335,9 @@ def svgd(
         The model (see :class:`stein_torch.Target`).
     particles : int, default=200
         Particles per ensemble.
-    steps : int, default=400
-        Most SVGD steps; the stop rule may end the run earlier.
+    steps : int, default=1000
+        Most SVGD steps; the stop rule usually ends the run much earlier (a warning says when it
+        did not).
     kernel : Kernel, optional
         Default ``IMQ() + Linear(radius=2.0)`` (median-heuristic bandwidth, moment-matching
         linear part; see :func:`default_kernel`), or the target's declared default (module
@@ -397,16 +381,21 @@ def svgd(
     anneal : callable, optional
         Annealing schedule ``step -> drive`` in [0, 1] scaling the score term of the update, e.g.
         ``st.schedules.linear(300)`` (see :mod:`stein_torch.samplers.schedules`).
-    stop : StopRule or bool, optional
+    stop : StopRule, KSDPlateau or bool, optional
         When to end the run before ``steps``: None or True -> the default
-        :class:`~stein_torch.samplers.stopping.StopRule`, False -> run all ``steps``, or a StopRule.
-        The KSD of each ensemble (whitened coordinates) is recorded every ``stop.every`` steps (10
-        without a rule) in ``history["ksd"]`` (NaN between checks), the final one in
-        ``settings["ksd"]``; ``stop_reason`` says why the run ended.
+        :class:`~stein_torch.samplers.stopping.StopRule` (the particles have settled), False -> run
+        all ``steps``, or a rule. The KSD of each ensemble (whitened coordinates) is recorded every
+        10 steps in ``history["ksd"]`` (NaN between checks), the final one in ``settings["ksd"]``;
+        ``stop_reason`` says why the run ended.
+    threads : int, optional
+        Torch intra-op threads during the run (the caller's setting is restored afterwards). Default:
+        one below 4e9 pairwise multiply-adds per step (ensembles x particles^2 x coordinates), else
+        the caller's setting (:mod:`stein_torch.samplers.threads`).
     distributed : {None, False, True, "particles", "data"} or Sharding, optional
         Share the run between the processes of a torch.distributed group (``torchrun``; see
         docs/distributed.md): "particles" (or True) splits the particles, "data" the observations.
-        Results match one process to rounding; rank 0 writes checkpoints; every rank returns the Result.
+        Results match one process to rounding; rank 0 writes checkpoints and issues the warnings;
+        every rank returns the Result.
 
     Returns
     -------
@@ -416,24 +405,36 @@ def svgd(
         "interrupted" after Ctrl-C: the first press finishes the current step and returns, a second
         one aborts).
 
+    Warns
+    -----
+    RuntimeWarning
+        Each of ``Result.warnings`` (why the result may be wrong and what to do).
+
     Raises
     ------
-    FloatingPointError
-        The log density stayed NaN/inf (or raised) for some particles in 25 consecutive steps.
+    StuckEnsembleError
+        (a FloatingPointError) The log density was NaN/inf (or raised) for every particle of an
+        ensemble in 25 consecutive steps; ``.result`` holds the run so far (also in the checkpoint).
+        Particles held at such a region while others move are a warning, not an error.
     """
     steps, progress, checkpoint, _ = check_run_options(steps, progress, checkpoint, checkpoint_every)
     state = io.load_checkpoint(resume, "resume") if resume is not None else None
     same = dict(particles=particles, steps=steps, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init,
-                dtype=dtype, precondition=precondition, seed=seed, anneal=anneal, stop=stop,
+                dtype=dtype, precondition=precondition, seed=seed, anneal=anneal, stop=stop, threads=threads,
                 resume=None if state is None else (state.get("step"), state.get("u")))
     with sharding(distributed, target, particles=particles, seed=seed, resume=resume, device=device, settings=same) as shard:
         sampler = Sampler(
             shard.target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
             precondition=precondition, seed=shard.seed, device=device, state=state, anneal=anneal, stop=stop,
-            axis=shard.axis,
+            threads=threads, axis=shard.axis,
         )
         if sampler.step_count > steps:
             raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")
         sampler.run(steps - sampler.step_count, progress=progress and shard.lead, checkpoint=checkpoint,
                     checkpoint_every=checkpoint_every)
-        return shard.finish(sampler.result())
+        with run_threads(sampler.threads):
+            result = shard.finish(sampler.result())
+    for message in result.warnings if shard.lead else ():
+        if message != target.evaluation_warning:  # that one was issued at the user's line already
+            warnings.warn(message, RuntimeWarning, stacklevel=2)
+    return result
