@@ -14,7 +14,7 @@ from .files import load
 from .model import Latent, ObservedData, SamplerDefaults, Target
 from .race import race
 from .result import PredictiveBands, Result, predictive_interval, prior_predictive
-from .samplers import NUTS, Langevin, Sampler, StopRule, langevin, nuts, schedules, steppers, svgd
+from .samplers import NUTS, Langevin, RankFailure, Sampler, Sharding, StopRule, langevin, nuts, schedules, steppers, svgd
 from .stein import ksd, svgd_direction
 
 __all__ = [
@@ -24,9 +24,11 @@ __all__ = [
     "NUTS",
     "ObservedData",
     "PredictiveBands",
+    "RankFailure",
     "Result",
     "Sampler",
     "SamplerDefaults",
+    "Sharding",
     "StopRule",
     "Target",
     "crosscheck",

@@ -135,6 +135,8 @@ def _add_run_parser(sub, common) -> None:
     run.add_argument("--resume", metavar="FILE", help="continue the run saved in FILE (same model and options)")
     run.add_argument("--seed", type=_seed, default=0, help="random seed (default: 0)")
     run.add_argument("--out", metavar="FILE.nc", help="NetCDF output (default: MODEL.nc in the current folder)")
+    run.add_argument("--ranks", type=_positive_int, default=1, metavar="R",
+                     help="svgd: processes sharing the particles, started through torchrun on this machine (default: 1)")
 
 
 def _suites_help(suites: dict) -> str:
@@ -169,7 +171,7 @@ def main(argv: list[str] | None = None) -> int:
         args, extra = parser.parse_known_args(argv)
         if extra and args.command != "bench":  # suite options (e.g. --names, --seeds) go through to the suite
             parser.error(f"unrecognized arguments: {' '.join(extra)}")
-        args.suite_options = extra
+        args.suite_options, args.argv = extra, argv
         debug = getattr(args, "debug", False)
         _quiet_libraries()
         command = {"demo": _demo, "run": _run, "bench": _bench}[args.command]
@@ -283,8 +285,17 @@ def _run(args) -> int:
         except ValueError as err:
             raise UsageError(str(err)) from None
     target = _load_target(model, args.target, st.Target)
+    from . import launch
+
+    if args.ranks > 1 and "ranks" not in METHODS[args.method][1]:
+        raise UsageError(f"--ranks: --method {args.method} runs in one process; --ranks applies to --method svgd")
+    if args.ranks > 1 and not launch.inside_workers():  # start the workers, each running this command
+        return launch.start_workers(args.ranks, args.argv, getattr(args, "threads", None))
+    if launch.inside_workers() and launch.worker_count() != args.ranks:
+        raise UsageError(f"--ranks {args.ranks}: torchrun started {launch.worker_count()} workers; give the same number")
     options = {k: getattr(args, k) for k in ("particles", "ensembles", "steps", "no_stop", "kernel", "draws", "warmup",
                                              "checkpoint", "resume", "seed")}
+    options["ranks"] = args.ranks if args.ranks > 1 else None
     start = time.perf_counter()
     try:
         run, python_warnings = sample(target, args.method, options, progress=sys.stderr.isatty())
@@ -293,9 +304,12 @@ def _run(args) -> int:
             raise UsageError(str(err)) from None
         raise
     seconds = time.perf_counter() - start
+    if launch.worker_rank() != 0:  # rank 0 prints and writes; the others hold the same particles
+        return 0
     chains, draws = run.particles.shape[:2]
     unit = "particles" if run.method == "svgd" else "draws"
-    print(f"{model.name}: {run.method}, {chains} x {draws} {unit}, {seconds:.1f} s")
+    ranks = f" on {args.ranks} ranks" if args.ranks > 1 else ""
+    print(f"{model.name}: {run.method}, {chains} x {draws} {unit}, {seconds:.1f} s{ranks}")
     for line in report(run, python_warnings):
         print(line)
     print()

@@ -22,7 +22,8 @@ __all__ = ["METHODS", "STOP_REASONS", "available_methods", "parse_kernel", "samp
 # --method name -> (function in stein_torch, {command-line option: keyword argument})
 METHODS: dict[str, tuple[str, dict[str, str]]] = {
     "svgd": ("svgd", {"particles": "particles", "ensembles": "ensembles", "steps": "steps", "no_stop": "stop",
-                      "kernel": "kernel", "checkpoint": "checkpoint", "resume": "resume", "seed": "seed"}),
+                      "kernel": "kernel", "checkpoint": "checkpoint", "resume": "resume", "seed": "seed",
+                      "ranks": "distributed"}),
     "langevin": ("langevin", {"ensembles": "chains", "draws": "draws", "warmup": "warmup",
                               "checkpoint": "checkpoint", "resume": "resume", "seed": "seed"}),
     "nuts": ("nuts", {"ensembles": "chains", "draws": "draws", "warmup": "warmup",
@@ -111,6 +112,8 @@ def sample(target, method: str, options: dict, progress: bool):
         kwargs["stop"] = False  # --no-stop
     if "kernel" in kwargs:
         kwargs["kernel"] = parse_kernel(kwargs["kernel"])
+    if "distributed" in kwargs:  # --ranks R > 1: the particles shared by the R workers of torchrun
+        kwargs["distributed"] = "particles"
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         run = function(target, progress=progress, **kwargs)

@@ -233,7 +233,7 @@ def test_bench_passes_suite_options_through(capsys, one_thread, monkeypatch):
         (["demo", "--seed", "-1"], "non-negative"),
         (["run", "no_such_model.py"], "no such file"),
         (["run", "--steps", "5"], "MODEL.py"),
-        (["bench", "nosuch"], "core, accuracy, kernels, module, nuts, all"),
+        (["bench", "nosuch"], "core, accuracy, kernels, module, nuts, distributed, all"),
         (["demo", "--names", "x"], "unrecognized arguments: --names x"),
         (["bench", "core", "module", "--json"], "name a single suite"),
     ],

@@ -13,4 +13,5 @@ SUITES = {
     "kernels": "stein_torch.benchmarks.kernels",    # kernel study: W1 error against steps and score evals
     "module": "stein_torch.benchmarks.module",      # nn.Module scores: vmap vs a loop over particles
     "nuts": "stein_torch.benchmarks.nuts",          # NUTS tree building vs its batched score calls
+    "distributed": "stein_torch.benchmarks.distributed",  # 1 rank vs 2 ranks: particle and data sharding, memory
 }

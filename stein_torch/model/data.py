@@ -95,6 +95,8 @@ class ObservedData:
         self.simulates: bool | None = None  # whether the likelihood returns a Distribution (known after a call)
         self.indices: torch.Tensor | None = None
         self.window: tuple[int, int] | None = None  # rows of the data in use that a score chunk sees
+        self.shard: tuple[int, int] | None = None  # data sharding: the observations this process scores
+        self.counts_prior = True  # data sharding: whether this process's log density includes the prior
         self._generator: torch.Generator | None = None
         self._order: torch.Tensor | None = None
         self._position = 0
@@ -164,7 +166,15 @@ class ObservedData:
     @property
     def in_use(self) -> int:
         """Number of observations in use (the minibatch size, or n_obs)."""
-        return self.n_obs if self.indices is None else self.indices.numel()
+        if self.shard is None:
+            return self.n_obs if self.indices is None else self.indices.numel()
+        return self.shard[1] - self.shard[0] if self.indices is None else self._shard_indices().numel()
+
+    def _shard_indices(self) -> torch.Tensor:
+        """The current minibatch's observations inside this process's shard, relative to its start."""
+        lo, hi = self.shard
+        inside = self.indices[(self.indices >= lo) & (self.indices < hi)]
+        return inside - lo
 
     def score_chunks(self, n_particles: int) -> list[tuple[int, int]]:
         """Row ranges of the data in use, each with at most ``SCORE_PAIRS`` particle-observation pairs.
@@ -190,7 +200,7 @@ class ObservedData:
     @property
     def with_prior(self) -> bool:
         """Whether the log density in use includes the prior (not in later score chunks)."""
-        return self.window is None or self.window[0] == 0
+        return self.counts_prior and (self.window is None or self.window[0] == 0)
 
     # ------------------------------------------------------------------ access
     def current(self, dtype: torch.dtype, device=None) -> tuple[dict, float]:
@@ -198,10 +208,14 @@ class ObservedData:
         ``dtype``, and the scale n_obs / |batch|."""
         full = self.cast(dtype, device)
         scale = 1.0 if self.indices is None else self.n_obs / self.indices.numel()
-        if self.indices is None:
+        indices = self.indices
+        if self.shard is not None:  # data sharding: this process's slice (and its part of the minibatch)
+            full = {k: v[self.shard[0] : self.shard[1]] for k, v in full.items()}
+            indices = None if indices is None else self._shard_indices()
+        if indices is None:
             batch = full
         else:
-            idx = self.indices.to(next(iter(full.values())).device)
+            idx = indices.to(next(iter(full.values())).device)
             batch = {k: v[idx] for k, v in full.items()}
         if self.window is not None:
             start, stop = self.window
@@ -268,7 +282,9 @@ def _pointwise_chunk(log_likelihood: Callable, arg, batch: dict, n_particles: in
     return check_terms(terms, n)
 
 
-def pointwise_log_likelihood(target, z: torch.Tensor, max_elements: int = POINTWISE_ELEMENTS) -> np.ndarray:
+def pointwise_log_likelihood(
+    target, z: torch.Tensor, max_elements: int = POINTWISE_ELEMENTS, observations: tuple[int, int] | None = None
+) -> np.ndarray:
     """Per-observation log-likelihood on the full data for particles ``z`` (..., dim), in chunks.
 
     Parameters
@@ -279,15 +295,18 @@ def pointwise_log_likelihood(target, z: torch.Tensor, max_elements: int = POINTW
         Unconstrained particles.
     max_elements : int
         Particles x observations evaluated at once (bounds the memory).
+    observations : (int, int), optional
+        Only observations start..stop-1 (default: all).
 
     Returns
     -------
-    ndarray of shape (..., n_obs)
+    ndarray of shape (..., n_obs) (or (..., stop - start))
     """
     data: ObservedData = target.data
     batch_shape = z.shape[:-1]
     flat = z.reshape(-1, z.shape[-1])
-    n_particles, n_obs = flat.shape[0], data.n_obs
+    first, last = observations or (0, data.n_obs)
+    n_particles, n_obs = flat.shape[0], last - first
     obs_chunk = max(1, min(n_obs, max_elements))
     particle_chunk = max(1, max_elements // obs_chunk)
     out = torch.empty(n_particles, n_obs, dtype=z.dtype)
@@ -298,7 +317,7 @@ def pointwise_log_likelihood(target, z: torch.Tensor, max_elements: int = POINTW
             m = next(iter(values.values())).shape[0]
             for o0 in range(0, n_obs, obs_chunk):
                 o1 = min(n_obs, o0 + obs_chunk)
-                batch = data.slice(o0, o1, z.dtype, z.device)
+                batch = data.slice(first + o0, first + o1, z.dtype, z.device)
                 out[p0 : p0 + m, o0:o1] = _pointwise_chunk(target.log_likelihood, arg, batch, m, o1 - o0, data).cpu()
     return out.reshape(*batch_shape, n_obs).numpy()
 
@@ -317,15 +336,16 @@ def data_dims(name: str, ndim: int) -> list[str]:
     return ["obs"] + [f"{name}_dim_{i}" for i in range(1, ndim)]
 
 
-def likelihood_groups(target, z: torch.Tensor) -> dict:
-    """The ``log_likelihood``, ``observed_data`` and ``constant_data`` groups and their dims."""
+def likelihood_groups(target, z: torch.Tensor, values: np.ndarray | None = None) -> dict:
+    """The ``log_likelihood``, ``observed_data`` and ``constant_data`` groups and their dims
+    (``values``: the pointwise terms when already computed, shape (..., n_obs))."""
     data: ObservedData = target.data
     observed, constant = data.groups()
     if len(observed) == 1 and next(iter(observed.values())).ndim == 1:
         name = next(iter(observed))  # same name as the observation: what arviz.loo_pit and plots expect
     else:
         name = "log_lik" if "log_lik" not in data.tensors else "log_lik_"
-    values = pointwise_log_likelihood(target, z)
+    values = pointwise_log_likelihood(target, z) if values is None else values
     dims = {name: ["obs"]}
     for group in (observed, constant):
         for k, v in group.items():

@@ -6,9 +6,12 @@ checkpoints, history) -> :class:`~stein_torch.result.Result`.
 """
 
 from . import schedules, steppers
+from .comm import RankFailure
+from .distributed import Sharding
 from .langevin import Langevin, langevin
 from .nuts import NUTS, nuts
 from .stopping import StopRule
 from .svgd import Sampler, svgd
 
-__all__ = ["svgd", "Sampler", "langevin", "Langevin", "nuts", "NUTS", "StopRule", "schedules", "steppers"]
+__all__ = ["svgd", "Sampler", "langevin", "Langevin", "nuts", "NUTS", "StopRule", "Sharding", "RankFailure",
+           "schedules", "steppers"]

@@ -3,8 +3,8 @@
 Every reduction over the particles of an ensemble is computed either on the gathered particle set
 (bandwidth, centring, standardiser, re-whitening: the same on every process) or as partial sums
 over this process's rows that :meth:`ParticleAxis.sum` completes (kernel Stein discrepancy, fault
-counts). In one process both collectives are the identity; a distributed backend replaces them with
-all-gather and all-reduce and changes nothing else.
+counts). In one process both collectives are the identity; a distributed backend
+(:mod:`stein_torch.samplers.distributed`) replaces them with all-gathers and changes nothing else.
 """
 
 from __future__ import annotations
@@ -41,9 +41,17 @@ class ParticleAxis:
         """Rows of every process along the particle axis (dim 1): (B, rows, ...) -> (B, N, ...)."""
         return local
 
+    def gather_many(self, *locals_: torch.Tensor) -> tuple[torch.Tensor, ...]:
+        """:meth:`gather` of several tensors (B, rows) or (B, rows, k) in one exchange."""
+        return locals_
+
     def sum(self, partial: torch.Tensor) -> torch.Tensor:
         """Sum of a per-process partial result over the processes."""
         return partial
+
+    def agree(self, requested: bool, particles: torch.Tensor) -> bool:
+        """Whether any process asks to stop (e.g. Ctrl-C), so that all stop after the same step."""
+        return bool(requested)
 
     def __repr__(self) -> str:
         return f"{type(self).__name__}(n={self.n})"

@@ -60,7 +60,7 @@ def run_warnings(sampler, z: torch.Tensor) -> list[str]:
             f"{info['runaways']} of {info['starts']} mode searches ran away: the log density keeps growing "
             "along some direction (a funnel-like neck, e.g. a hierarchical scale going to 0 with its group "
             "effects). Particles in such a neck come out too narrow; reparametrise (non-centred form) or "
-            "check with MCMC (st.langevin)."
+            "check with NUTS: st.crosscheck(run, target)."
         )
     if info.get("modes", 1) == 0:
         found.append(
@@ -105,7 +105,7 @@ def _cap_message(sampler) -> str:
         f"the run reached the step cap ({sampler.step_count} steps){trend} before the particles settled "
         "(the stop rule did not fire): the draws may still be moving. Run more steps (steps=), and if the "
         "run still does not settle, the posterior's shape (curved, funnel-like or heavy-tailed) is hard "
-        "for SVGD: reparametrise or compare with MCMC (st.langevin)."
+        "for SVGD: reparametrise or compare with NUTS: st.crosscheck(run, target)."
     )
 
 
@@ -176,13 +176,13 @@ def _importance_messages(sampler, z: torch.Tensor) -> list[str]:
             found.append(
                 f"an importance-sampling check of the particles failed ({why}): the target has mass the particles "
                 "do not cover (a long tail, a "
-                "missed mode, or a funnel). The spread may be too small; compare with MCMC (st.langevin)."
+                "missed mode, or a funnel). The spread may be too small; compare with NUTS: st.crosscheck(run, target)."
             )
         elif abs(worst) > THRESHOLDS["tail_log_sd"]:
             found.append(
                 f"an importance-sampling check of the particles puts the sd of coordinate {coordinate} "
                 f"{100 * math.expm1(worst):+.0f}% off the particles' (Pareto k = {k_hat:.2f}): the particles "
                 "probably miss part of a tail. Run longer, reparametrise (e.g. log scale for a long right "
-                "tail) or compare with MCMC (st.langevin)."
+                "tail) or compare with NUTS: st.crosscheck(run, target)."
             )
     return found

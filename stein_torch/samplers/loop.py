@@ -71,10 +71,11 @@ def run_loop(
 
     sampler.stop_reason = sampler.finished_reason
     saved_at, consistent = None, True
+    agree = getattr(sampler, "stop_together", None)  # processes sharing a run stop after the same step
     with InterruptGuard() as interrupt, tqdm(total=steps, desc=sampler.name, disable=not progress, leave=False) as bar:
         try:
             for _ in range(steps):
-                if interrupt.requested:
+                if interrupt.requested if agree is None else agree(interrupt.requested):
                     sampler.stop_reason = "interrupted"
                     break
                 sampler.step()

@@ -82,7 +82,7 @@ def svgd_result(sampler) -> Result:
     if data is not None and data.batch_size is not None:  # report the full-data log density
         from ..model.data import full_log_prob
 
-        lp = full_log_prob(sampler.target, z)
+        lp = sampler.axis.gather(full_log_prob(sampler.target, z[:, sampler.axis.rows]))
     history = {k: np.asarray(v) for k, v in sampler.history.items()}
     settings = {
         "method": "svgd", "kernel": repr(sampler.kernel), "stepper": repr(sampler.stepper), "steps": sampler.step_count,

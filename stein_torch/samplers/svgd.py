@@ -20,6 +20,7 @@ from ..result import Result
 from ..stein import Scratch, svgd_direction
 from ..stein.ksd import default_ksd_kernel, ksd_from_sums, ksd_sums
 from .axis import ParticleAxis
+from .distributed import sharding
 from .faults import Evaluator, StuckEnsembleError, persistent_fault_message, shrink_faulty_steps
 from .loop import append_history, check_run_options, run_loop
 from .monitor import Watch
@@ -44,7 +45,8 @@ class Sampler:
     """Stateful SVGD run: ``step()``, ``run(steps)``, ``state_dict()``, ``result()``.
 
     Parameters are those of :func:`svgd`; ``state`` (a :meth:`state_dict`) continues a saved run
-    without recomputing its set-up.
+    without recomputing its set-up; ``axis`` shares the particles between processes (set by
+    ``svgd(distributed=...)``, see :mod:`stein_torch.samplers.distributed`).
     """
 
     name = "svgd"
@@ -67,6 +69,7 @@ class Sampler:
         anneal=None,
         stop: StopRule | KSDPlateau | bool | None = None,
         threads: int | None = None,
+        axis: ParticleAxis | None = None,
     ):
         setup = configure(target, init=init, dtype=dtype, precondition=precondition, seed=seed, device=device, state=state)
         self.target, self.dtype, self.device = setup.target, setup.dtype, setup.device
@@ -82,7 +85,7 @@ class Sampler:
             stepper = defaults.stepper
         self.kernel = default_kernel() if kernel is None else check_type(kernel, "kernel", Kernel, "stein_torch kernel (st.kernels.*)")
         self.stepper = default_stepper() if stepper is None else as_stepper(stepper)
-        self.axis = ParticleAxis(self.n)
+        self.axis = ParticleAxis(self.n) if axis is None else axis  # sharded runs: set by svgd(distributed=)
         self.evaluate = Evaluator(self.target)
         self.scratch = Scratch()  # pairwise buffers reused by every step's direction and KSD
         self.data_stream = target.data  # its state_dict makes checkpoints resume the minibatches
@@ -100,7 +103,8 @@ class Sampler:
         self.record = RunRecord(self.n)  # what the warnings read (set-up outcome, moments every KSD_EVERY steps)
         if state is None:
             with run_threads(self.threads):
-                start = starting_points(setup, self.evaluate, (self.ensembles, self.n))
+                evaluate = lambda u, affine, first=False: self._evaluate(u, affine=affine, first=first)  # noqa: E731
+                start = starting_points(setup, evaluate, (self.ensembles, self.n))
             self.affine, self.laplace_ok, self.u, self.lp, self.score = start.affine, start.laplace_ok, start.u, start.lp, start.score
             self.precondition = start.precondition
             self.record.note_start(start, self.n)
@@ -118,13 +122,14 @@ class Sampler:
         self.evaluate.count = int(value)
 
     # ------------------------------------------------------------------ evaluation and direction
-    def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None):
+    def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None, *, affine=None, first: bool = False):
         """Log density, whitened score and faults of all particles u (B, N, d); this process
-        evaluates its own rows, the axis gathers the rest."""
-        rows = self.axis.rows
+        evaluates its own rows, the axis gathers the rest (and the count is that of all rows)."""
+        rows, count = self.axis.rows, self.evaluate.count
         local_mask = None if mask is None else mask[:, rows]
-        lp, score, bad = self.evaluate(u[:, rows], self.affine, mask=local_mask)
-        return self.axis.gather(lp), self.axis.gather(score), self.axis.gather(bad)
+        lp, score, bad = self.evaluate(u[:, rows], self.affine if affine is None else affine, mask=local_mask, first=first)
+        self.evaluate.count = count + (u.shape[:-1].numel() if mask is None else int(mask.sum()))
+        return self.axis.gather_many(lp, score, bad)
 
     def direction(self, u: torch.Tensor, score: torch.Tensor, lp: torch.Tensor) -> torch.Tensor:
         """The SVGD direction (B, N, d) at particles u with whitened scores."""
@@ -230,6 +235,10 @@ class Sampler:
             row["ksd"] = np.full(self.ensembles, np.nan)
         append_history(self.history, row)
 
+    def stop_together(self, requested: bool) -> bool:
+        """Whether any process sharing this run asks to stop (see :meth:`ParticleAxis.agree`)."""
+        return self.axis.agree(requested, self.u)
+
     def progress_figures(self) -> dict | None:
         """Figures for the progress bar after a KSD check (else None)."""
         if self.step_count % self.ksd_every:
@@ -283,8 +292,10 @@ class Sampler:
         restore_parts(state, parts)  # the step rule's own state after bind()
 
     def save(self, path) -> None:
-        """Write :meth:`state_dict` to ``path`` atomically (see :mod:`stein_torch.io`)."""
-        io.save_checkpoint(path, self.state_dict())
+        """Write :meth:`state_dict` to ``path`` atomically (see :mod:`stein_torch.io`); in a sharded
+        run only rank 0 writes (every rank holds the same state)."""
+        if self.axis.rank == 0:
+            io.save_checkpoint(path, self.state_dict())
 
     # ------------------------------------------------------------------ output
     def result(self) -> Result:
@@ -314,6 +325,7 @@ def svgd(
     anneal=None,
     stop: StopRule | KSDPlateau | bool | None = None,
     threads: int | None = None,
+    distributed=None,
 ) -> Result:
     """Draw posterior particles by Stein variational gradient descent.
 
@@ -379,6 +391,11 @@ def svgd(
         Torch intra-op threads during the run (the caller's setting is restored afterwards). Default:
         one below 4e9 pairwise multiply-adds per step (ensembles x particles^2 x coordinates), else
         the caller's setting (:mod:`stein_torch.samplers.threads`).
+    distributed : {None, False, True, "particles", "data"} or Sharding, optional
+        Share the run between the processes of a torch.distributed group (``torchrun``; see
+        docs/distributed.md): "particles" (or True) splits the particles, "data" the observations.
+        Results match one process to rounding; rank 0 writes checkpoints and issues the warnings;
+        every rank returns the Result.
 
     Returns
     -------
@@ -402,16 +419,22 @@ def svgd(
     """
     steps, progress, checkpoint, _ = check_run_options(steps, progress, checkpoint, checkpoint_every)
     state = io.load_checkpoint(resume, "resume") if resume is not None else None
-    sampler = Sampler(
-        target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
-        precondition=precondition, seed=seed, device=device, state=state, anneal=anneal, stop=stop, threads=threads,
-    )
-    if sampler.step_count > steps:
-        raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")
-    sampler.run(steps - sampler.step_count, progress=progress, checkpoint=checkpoint, checkpoint_every=checkpoint_every)
-    with run_threads(sampler.threads):
-        result = sampler.result()
-    for message in result.warnings:
+    same = dict(particles=particles, steps=steps, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init,
+                dtype=dtype, precondition=precondition, seed=seed, anneal=anneal, stop=stop, threads=threads,
+                resume=None if state is None else (state.get("step"), state.get("u")))
+    with sharding(distributed, target, particles=particles, seed=seed, resume=resume, device=device, settings=same) as shard:
+        sampler = Sampler(
+            shard.target, particles, kernel=kernel, stepper=stepper, ensembles=ensembles, init=init, dtype=dtype,
+            precondition=precondition, seed=shard.seed, device=device, state=state, anneal=anneal, stop=stop,
+            threads=threads, axis=shard.axis,
+        )
+        if sampler.step_count > steps:
+            raise ValueError(f"steps: the checkpoint is already at step {sampler.step_count}, beyond steps={steps}")
+        sampler.run(steps - sampler.step_count, progress=progress and shard.lead, checkpoint=checkpoint,
+                    checkpoint_every=checkpoint_every)
+        with run_threads(sampler.threads):
+            result = shard.finish(sampler.result())
+    for message in result.warnings if shard.lead else ():
         if message != target.evaluation_warning:  # that one was issued at the user's line already
             warnings.warn(message, RuntimeWarning, stacklevel=2)
     return result
