@@ -15,8 +15,8 @@ quantity answers the mill's question: the day the boards reach 12 % moisture.
 
 The readings are described by a distribution (log-normal around the drying curve), so the same
 definition scores them and simulates new ones: the InferenceData holds a ``posterior_predictive``
-group for ``arviz.plot_ppc``. The particles are checked against a Metropolis-adjusted Langevin run on
-the same model (``comparison.png``).
+group for ``arviz.plot_ppc``. The particles are checked against a NUTS run on the same model
+(:func:`stein_torch.crosscheck`; ``comparison.png``).
 
 Use from the shell with ``stein-torch demo`` or from Python::
 
@@ -34,10 +34,11 @@ import numpy as np
 import torch
 from torch.distributions import HalfNormal, LogNormal, constraints
 
+from .crosscheck import crosscheck
 from .io import save_figure, save_netcdf
 from .model import Latent, Target
 from .result import Result
-from .samplers import langevin, svgd
+from .samplers import svgd
 
 __all__ = ["kiln_data", "demo_target", "run_demo", "days_to_moisture", "DEMO_STEPS", "KILN_DRY_PERCENT", "LABELS"]
 
@@ -111,30 +112,33 @@ def run_demo(
     seed: int = 0,
     progress: bool | None = None,
 ) -> Result:
-    """Sample the kiln-drying posterior, check it against MALA, and write ``posterior.nc``,
+    """Sample the kiln-drying posterior, check it against NUTS, and write ``posterior.nc``,
     ``pair_plot.png``, ``history.png`` and ``comparison.png`` into ``out_dir`` (created if needed).
 
     Returns
     -------
     Result
-        The run; its files are listed in ``result.settings["files"]`` and the comparison with MALA
-        (per parameter: mean difference in MALA sd, sd ratio) in ``result.settings["against_mala"]``.
+        The run; its files are listed in ``result.settings["files"]``, the comparison with NUTS
+        (per parameter: mean difference in NUTS sd, sd ratio) in ``result.settings["against_nuts"]``
+        and the printed :func:`stein_torch.crosscheck` table in ``result.settings["crosscheck"]``.
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     target = demo_target(kiln_data())
     run = svgd(target, particles=particles, steps=steps, seed=seed, progress=progress)
     idata = run.to_inference_data(dims={"moisture": ["board"], "day": ["board"]})
-    mala = langevin(target, chains=4, draws=1000, warmup=1000, seed=seed, progress=progress)
-    figures = compare_draws(run.draws, mala.draws)
+    check = crosscheck(run, target, seed=seed, progress=progress)  # NUTS, 4 chains x 1000 draws
+    reference = check.reference.draws
+    figures = compare_draws(run.draws, reference)
     files = {
         "posterior": save_netcdf(idata, out / "posterior.nc"),
         "pair_plot": _save_plot(lambda: _pair_plot(idata, run.draws), out / "pair_plot.png"),
         "history": _save_plot(run.plot_history, out / "history.png"),
-        "comparison": _save_plot(lambda: comparison_figure(run.draws, mala.draws, figures), out / "comparison.png"),
+        "comparison": _save_plot(lambda: comparison_figure(run.draws, reference, figures), out / "comparison.png"),
     }
     run.settings["files"] = {k: str(v) for k, v in files.items()}
-    run.settings["against_mala"] = figures
+    run.settings["against_nuts"] = figures
+    run.settings["crosscheck"] = str(check)
     return run
 
 
@@ -172,7 +176,7 @@ def _pair_plot(idata, draws: dict):
 
 
 def comparison_figure(particles: dict, reference: dict, figures: dict):
-    """SVGD particles against MALA draws, one panel per parameter, titles giving the differences."""
+    """SVGD particles against NUTS draws, one panel per parameter, titles giving the differences."""
     import matplotlib.pyplot as plt
 
     names = list(reference)
@@ -180,12 +184,12 @@ def comparison_figure(particles: dict, reference: dict, figures: dict):
     for ax, name in zip(np.atleast_1d(axes), names):
         ref, got = reference[name].reshape(-1).numpy(), particles[name].reshape(-1).numpy()
         bins = np.linspace(min(ref.min(), got.min()), max(ref.max(), got.max()), 30)
-        ax.hist(ref, bins=bins, density=True, alpha=0.45, color="grey", label=f"MALA ({ref.size} draws)")
+        ax.hist(ref, bins=bins, density=True, alpha=0.45, color="grey", label=f"NUTS ({ref.size} draws)")
         ax.hist(got, bins=bins, density=True, histtype="step", lw=1.6, color="tab:blue", label=f"SVGD ({got.size} particles)")
         shift, ratio = figures[name]
-        ax.set_title(f"means differ by {shift:.2f} MALA sd\nsd ratio SVGD / MALA {ratio:.2f}", fontsize=10)
+        ax.set_title(f"means differ by {shift:.2f} NUTS sd\nsd ratio SVGD / NUTS {ratio:.2f}", fontsize=10)
         ax.set_xlabel(LABELS.get(name, name))
     np.atleast_1d(axes)[0].set_ylabel("density")
     np.atleast_1d(axes)[0].legend(fontsize="small")
-    figure.suptitle("Kiln drying: SVGD particles against a Metropolis-adjusted Langevin run")
+    figure.suptitle("Kiln drying: SVGD particles against a NUTS run")
     return figure

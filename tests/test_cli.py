@@ -49,7 +49,8 @@ def test_demo_command_writes_netcdf_and_three_pngs(tmp_path, capsys):
     for name in NAMES:  # the ArviZ summary table lists every parameter
         assert name in printed
     assert {p.name for p in out.iterdir()} == {"posterior.nc", "pair_plot.png", "history.png", "comparison.png"}
-    assert "against MALA" in printed and "(stopped: " in printed
+    assert "against NUTS" in printed and "(stopped: " in printed
+    assert "SVGD against NUTS" in printed and "drying_rate" in printed  # the crosscheck table
     for png in ("pair_plot.png", "history.png", "comparison.png"):
         assert (out / png).read_bytes()[:8] == PNG_SIGNATURE
     # NetCDF (Unidata standard, via ArviZ): 1 chain (ensemble) x 40 draws (particles) per parameter
