@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import torch
 
-__all__ = ["Evaluator", "shrink_faulty_steps", "persistent_fault_message", "wall_message", "StuckEnsembleError",
+__all__ = ["Evaluator", "CountsEvaluations", "shrink_faulty_steps", "persistent_fault_message", "wall_message", "StuckEnsembleError",
            "MAX_BACKTRACK"]
 
 MAX_BACKTRACK = 10  # halvings of a faulty particle's step before it is put back where it was
@@ -166,6 +166,22 @@ def wall_message(step: int, faulty_steps: int, window: int, faults: int, reverte
         f"steps shrunk, {reverted} undone), so particles may be piled against that boundary and the spread "
         f"there is not the posterior's.{_raised(last_error)} {HINT}"
     )
+
+
+class CountsEvaluations:
+    """For samplers: ``grad_evals``, the score evaluations so far (set-up included), is the count
+    kept by the sampler's :class:`Evaluator` ``self.evaluate`` (checkpoints restore it)."""
+
+    evaluate: Evaluator
+
+    @property
+    def grad_evals(self) -> int:
+        """Score evaluations so far (points x evaluations, set-up included)."""
+        return self.evaluate.count
+
+    @grad_evals.setter
+    def grad_evals(self, value: int) -> None:
+        self.evaluate.count = int(value)
 
 
 class StuckEnsembleError(FloatingPointError):

@@ -36,11 +36,11 @@ from .. import io
 from ..checks import check_bool, check_int, check_optional_real
 from ..result import Result
 from .adaptation import DualAveraging
-from .faults import Evaluator
+from .faults import CountsEvaluations, Evaluator
 from .loop import append_history, check_run_options, run_loop
 from .setup import configure, starting_points
 from .precondition import Affine
-from .state import check_common, common_state, read_affine, restore_common, restore_parts, state_tensor
+from .state import CHAIN_KEYS, chain_state, check_common, common_state, read_chain_state, restore_common, restore_parts
 
 __all__ = ["langevin", "Langevin", "TARGET_ACCEPT"]
 
@@ -49,7 +49,7 @@ __all__ = ["langevin", "Langevin", "TARGET_ACCEPT"]
 TARGET_ACCEPT = 0.574
 
 
-class Langevin:
+class Langevin(CountsEvaluations):
     """Stateful MALA / ULA run over a batch of chains: ``step()``, ``state_dict()``, ``result()``.
 
     Parameters are those of :func:`langevin`; ``state`` continues a saved run.
@@ -103,14 +103,6 @@ class Langevin:
             self.affine, self.laplace_ok, self.u, self.lp, self.score = start.affine, start.laplace_ok, start.u, start.lp, start.score
         else:
             self.load_state_dict(state, argname="resume")
-
-    @property
-    def grad_evals(self) -> int:
-        return self.evaluate.count
-
-    @grad_evals.setter
-    def grad_evals(self, value: int) -> None:
-        self.evaluate.count = int(value)
 
     def step(self) -> None:
         """One Langevin step of every chain; warmup steps adapt the step size, later ones are kept."""
@@ -172,26 +164,16 @@ class Langevin:
         """Chains (``u`` (C, d) whitened, ``lp``, ``score``), whitening, step sizes, the draws kept so
         far, counters, generator, history, and the step-size adaptation (a stateful part)."""
         state = common_state(self, self.settings())
-        state.update({
-            "u": self.u.clone(), "lp": self.lp.clone(), "score": self.score.clone(), "affine": self.affine.state_dict(),
-            "laplace_ok": bool(self.laplace_ok), "eps": torch.as_tensor(self.eps), "elapsed": self.elapsed,
-            "kept": self.kept.clone(), "kept_lp": self.kept_lp.clone(), "kept_accept": torch.as_tensor(self.kept_accept),
-        })
+        state.update(chain_state(self))
+        state["kept_accept"] = torch.as_tensor(self.kept_accept)
         return state
 
     def load_state_dict(self, state: Mapping, *, argname: str = "state") -> None:
-        required = ("u", "lp", "score", "affine", "laplace_ok", "eps", "elapsed", "kept", "kept_lp", "kept_accept")
-        parts = check_common(self, state, self.settings(), required, argname)
-        c, d = self.chains, self.target.dim
-        tensor = lambda key, shape: state_tensor(state, key, shape, argname, self.dtype, self.device)  # noqa: E731
-        u, lp, score = tensor("u", (c, d)), tensor("lp", (c,)), tensor("score", (c, d))
-        affine = read_affine(state["affine"], c, d, f"{argname}['affine']", self.dtype, self.device)
-        kept, kept_lp, eps = tensor("kept", (c, self.draws, d)), tensor("kept_lp", (c, self.draws)), tensor("eps", (c,))
-        eps = eps.cpu().numpy().astype(np.float64)
+        parts = check_common(self, state, self.settings(), CHAIN_KEYS + ("kept_accept",), argname)
+        chains = read_chain_state(self, state, argname)
         restore_common(self, state)
-        self.u, self.lp, self.score, self.affine = u, lp, score, affine
-        self.laplace_ok, self.elapsed, self.eps = bool(state["laplace_ok"]), float(state["elapsed"]), eps
-        self.kept, self.kept_lp = kept, kept_lp
+        for name, value in chains.items():
+            setattr(self, name, value)
         self.kept_accept = np.asarray(state["kept_accept"], dtype=np.float64)
         restore_parts(state, parts)  # the step-size adaptation among them
 

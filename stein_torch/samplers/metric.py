@@ -32,7 +32,35 @@ __all__ = ["DiagonalMetric", "DenseMetric", "make_metric", "metric_from_state", 
 METRICS = ("diag", "dense")
 
 
-class DiagonalMetric:
+class _Metric:
+    """What both metrics share: the kinetic energy and the state (``kind`` and ``inverse_mass``)."""
+
+    kind = ""
+    inverse_mass: torch.Tensor
+
+    def _set(self, inverse_mass: torch.Tensor) -> None:
+        raise NotImplementedError
+
+    def velocity(self, momentum: torch.Tensor) -> torch.Tensor:
+        raise NotImplementedError
+
+    def kinetic_energy(self, momentum: torch.Tensor, velocity: torch.Tensor | None = None) -> torch.Tensor:
+        """``p^T M^{-1} p / 2``: shape (...). Pass ``velocity`` when already computed."""
+        if velocity is None:
+            velocity = self.velocity(momentum)
+        return 0.5 * torch.linalg.vecdot(momentum, velocity)
+
+    def state_dict(self) -> dict:
+        """``{"kind": kind, "inverse_mass": tensor}`` ((d,) diagonal, (d, d) dense)."""
+        return {"kind": self.kind, "inverse_mass": self.inverse_mass.clone()}
+
+    def load_state_dict(self, state: dict) -> None:
+        """Restore from :meth:`state_dict` (derived quantities, such as a Cholesky factor, are recomputed)."""
+        _check_kind(state, self.kind)
+        self._set(state["inverse_mass"].to(self.inverse_mass))
+
+
+class DiagonalMetric(_Metric):
     """Diagonal metric ``M^{-1} = diag(inverse_mass)``.
 
     Parameters
@@ -67,23 +95,8 @@ class DiagonalMetric:
         """``M^{-1} p`` for momentum of shape (..., d); same shape."""
         return momentum * self.inverse_mass
 
-    def kinetic_energy(self, momentum: torch.Tensor, velocity: torch.Tensor | None = None) -> torch.Tensor:
-        """``p^T M^{-1} p / 2``: shape (...). Pass ``velocity`` when already computed."""
-        if velocity is None:
-            velocity = self.velocity(momentum)
-        return 0.5 * torch.linalg.vecdot(momentum, velocity)
 
-    def state_dict(self) -> dict:
-        """``{"kind": "diag", "inverse_mass": (d,) tensor}``."""
-        return {"kind": self.kind, "inverse_mass": self.inverse_mass.clone()}
-
-    def load_state_dict(self, state: dict) -> None:
-        """Restore from :meth:`state_dict` (derived quantities are recomputed)."""
-        _check_kind(state, self.kind)
-        self._set(state["inverse_mass"].to(self.inverse_mass))
-
-
-class DenseMetric:
+class DenseMetric(_Metric):
     """Dense metric with inverse mass ``M^{-1}`` (a covariance matrix).
 
     Parameters
@@ -121,21 +134,6 @@ class DenseMetric:
     def velocity(self, momentum: torch.Tensor) -> torch.Tensor:
         """``M^{-1} p`` for momentum of shape (..., d); same shape."""
         return momentum @ self.inverse_mass
-
-    def kinetic_energy(self, momentum: torch.Tensor, velocity: torch.Tensor | None = None) -> torch.Tensor:
-        """``p^T M^{-1} p / 2``: shape (...). Pass ``velocity`` when already computed."""
-        if velocity is None:
-            velocity = self.velocity(momentum)
-        return 0.5 * torch.linalg.vecdot(momentum, velocity)
-
-    def state_dict(self) -> dict:
-        """``{"kind": "dense", "inverse_mass": (d, d) tensor}``."""
-        return {"kind": self.kind, "inverse_mass": self.inverse_mass.clone()}
-
-    def load_state_dict(self, state: dict) -> None:
-        """Restore from :meth:`state_dict` (the Cholesky factor is recomputed)."""
-        _check_kind(state, self.kind)
-        self._set(state["inverse_mass"].to(self.inverse_mass))
 
 
 def make_metric(kind: str, dim: int, dtype: torch.dtype = torch.float64, device=None):

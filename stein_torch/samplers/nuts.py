@@ -24,12 +24,12 @@ from .. import io
 from ..checks import check_choice, check_int, check_real
 from ..result import Result
 from .mcmc_health import mcmc_warnings
-from .faults import Evaluator
+from .faults import CountsEvaluations, Evaluator
 from .loop import append_history, check_run_options, run_loop
 from .metric import make_metric
 from .precondition import Affine
 from .setup import configure, starting_points
-from .state import check_common, common_state, read_affine, restore_common, restore_parts, state_tensor
+from .state import CHAIN_KEYS, chain_state, check_common, common_state, read_chain_state, restore_common, restore_parts
 from .trajectory import DEFAULT_MAX_DEPTH, DEFAULT_MAX_ENERGY_ERROR, NoUTurnTransition
 from .warmup import Warmup, WarmupSchedule, initial_step_size
 
@@ -49,7 +49,7 @@ _DTYPES = {"acceptance_rate": np.float64, "step_size": np.float64, "tree_depth":
            "diverging": np.bool_, "energy": np.float64}
 
 
-class NUTS:
+class NUTS(CountsEvaluations):
     """Stateful NUTS run over a batch of chains: ``step()``, ``state_dict()``, ``result()``.
 
     Parameters are those of :func:`nuts`; ``state`` continues a saved run.
@@ -99,14 +99,6 @@ class NUTS:
         self.setup_seconds = time.perf_counter() - started
         if state is not None:
             self.load_state_dict(state, argname="resume")
-
-    @property
-    def grad_evals(self) -> int:
-        return self.evaluate.count
-
-    @grad_evals.setter
-    def grad_evals(self, value: int) -> None:
-        self.evaluate.count = int(value)
 
     def _evaluate(self, u: torch.Tensor):
         """Contained evaluation for the tree: finite junk (0) where a point is faulty."""
@@ -174,31 +166,21 @@ class NUTS:
         """Chains (``u`` (C, d) whitened, ``lp``, ``score``), whitening, step sizes, the draws and
         statistics kept so far, counters, generator, history, and the metric and warm-up state."""
         state = common_state(self, self.settings())
-        state.update({"u": self.u.clone(), "lp": self.lp.clone(), "score": self.score.clone(),
-                      "affine": self.affine.state_dict(), "laplace_ok": bool(self.laplace_ok),
-                      "eps": torch.as_tensor(self.eps), "elapsed": self.elapsed, "kept": self.kept.clone(),
-                      "kept_lp": self.kept_lp.clone(),
-                      "kept_stats": {k: torch.as_tensor(v.copy()) for k, v in self.kept_stats.items()}})
+        state.update(chain_state(self))
+        state["kept_stats"] = {k: torch.as_tensor(v.copy()) for k, v in self.kept_stats.items()}
         return state
 
     def load_state_dict(self, state: Mapping, *, argname: str = "state") -> None:
         """Continue from :meth:`state_dict`; the target and run settings must match (ValueError)."""
-        required = ("u", "lp", "score", "affine", "laplace_ok", "eps", "elapsed", "kept", "kept_lp", "kept_stats")
-        parts = check_common(self, state, self.settings(), required, argname)
-        c, d = self.chains, self.target.dim
-        tensor = lambda key, shape: state_tensor(state, key, shape, argname, self.dtype, self.device)  # noqa: E731
-        u, lp, score, eps = tensor("u", (c, d)), tensor("lp", (c,)), tensor("score", (c, d)), tensor("eps", (c,))
-        kept, kept_lp = tensor("kept", (c, self.draws, d)), tensor("kept_lp", (c, self.draws))
-        affine = read_affine(state["affine"], c, d, f"{argname}['affine']", self.dtype, self.device)
+        parts = check_common(self, state, self.settings(), CHAIN_KEYS + ("kept_stats",), argname)
+        chains = read_chain_state(self, state, argname)
         stats = state["kept_stats"]
         if not isinstance(stats, Mapping) or set(stats) != set(STAT_NAMES):
             raise ValueError(f"{argname}['kept_stats']: expected the statistics {list(STAT_NAMES)}")
         restore_common(self, state)
-        self.u, self.lp, self.score, self.affine = u, lp, score, affine
-        self.eps = eps.cpu().numpy().astype(np.float64)
-        self.laplace_ok, self.elapsed = bool(state["laplace_ok"]), float(state["elapsed"])
-        self.kept, self.kept_lp = kept, kept_lp
-        self.kept_stats = {k: np.asarray(stats[k]).astype(t).reshape(c, self.draws) for k, t in _DTYPES.items()}
+        for name, value in chains.items():
+            setattr(self, name, value)
+        self.kept_stats = {k: np.asarray(stats[k]).astype(t).reshape(self.chains, self.draws) for k, t in _DTYPES.items()}
         restore_parts(state, parts)  # the metric and the warm-up state
 
     def save(self, path) -> None:

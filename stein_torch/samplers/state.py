@@ -13,13 +13,14 @@ from __future__ import annotations
 import re
 from typing import Mapping, Protocol, runtime_checkable
 
+import numpy as np
 import torch
 
 from .. import io
 from .precondition import Affine
 
 __all__ = ["common_state", "check_common", "restore_common", "restore_parts", "stateful_parts", "state_tensor",
-           "read_affine"]
+           "read_affine", "CHAIN_KEYS", "chain_state", "read_chain_state"]
 
 
 @runtime_checkable
@@ -129,3 +130,31 @@ def read_affine(affine, lead: int, dim: int, where: str, dtype, device) -> Affin
         state_tensor(affine, "shift", (*shape, dim), where, dtype, device),
         state_tensor(affine, "matrix", (*shape, dim, dim), where, dtype, device),
     )
+
+
+CHAIN_KEYS = ("u", "lp", "score", "affine", "laplace_ok", "eps", "elapsed", "kept", "kept_lp")
+
+
+def chain_state(sampler) -> dict:
+    """What every MCMC sampler (Langevin, NUTS) adds to :func:`common_state`: the chains ``u`` (C, d)
+    (whitened), ``lp`` (C,), ``score`` (C, d), the whitening, per-chain step sizes ``eps`` (C,), the
+    seconds so far and the draws kept so far ``kept`` (C, draws, d), ``kept_lp`` (C, draws)."""
+    return {"u": sampler.u.clone(), "lp": sampler.lp.clone(), "score": sampler.score.clone(),
+            "affine": sampler.affine.state_dict(), "laplace_ok": bool(sampler.laplace_ok),
+            "eps": torch.as_tensor(sampler.eps), "elapsed": sampler.elapsed, "kept": sampler.kept.clone(),
+            "kept_lp": sampler.kept_lp.clone()}
+
+
+def read_chain_state(sampler, state: Mapping, argname: str) -> dict:
+    """The :data:`CHAIN_KEYS` of ``state`` checked against ``sampler`` (shapes, finite values), as
+    attribute name -> value; nothing is assigned, so a bad state changes nothing."""
+    c, d = sampler.chains, sampler.target.dim
+
+    def tensor(key, shape):
+        return state_tensor(state, key, shape, argname, sampler.dtype, sampler.device)
+
+    return {"u": tensor("u", (c, d)), "lp": tensor("lp", (c,)), "score": tensor("score", (c, d)),
+            "affine": read_affine(state["affine"], c, d, f"{argname}['affine']", sampler.dtype, sampler.device),
+            "laplace_ok": bool(state["laplace_ok"]), "eps": tensor("eps", (c,)).cpu().numpy().astype(np.float64),
+            "elapsed": float(state["elapsed"]), "kept": tensor("kept", (c, sampler.draws, d)),
+            "kept_lp": tensor("kept_lp", (c, sampler.draws))}

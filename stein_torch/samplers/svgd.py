@@ -21,7 +21,7 @@ from ..stein import Scratch, svgd_direction
 from ..stein.ksd import default_ksd_kernel, ksd_from_sums, ksd_sums
 from .axis import ParticleAxis
 from .distributed import sharding
-from .faults import Evaluator, StuckEnsembleError, persistent_fault_message, shrink_faulty_steps
+from .faults import CountsEvaluations, Evaluator, StuckEnsembleError, persistent_fault_message, shrink_faulty_steps
 from .loop import append_history, check_run_options, run_loop
 from .monitor import Watch
 from .precondition import Affine, covariance_affine, rewhiten_due
@@ -41,7 +41,7 @@ DEFAULT_STEPS = 1000  # most steps of a default run (the stop rule ends it when 
 KSD_EVERY = 10  # steps between KSD records (and the moment records the warnings read)
 
 
-class Sampler:
+class Sampler(CountsEvaluations):
     """Stateful SVGD run: ``step()``, ``run(steps)``, ``state_dict()``, ``result()``.
 
     Parameters are those of :func:`svgd`; ``state`` (a :meth:`state_dict`) continues a saved run
@@ -111,15 +111,6 @@ class Sampler:
             self.stepper.bind(self.u)
         else:  # resuming: the set-up (mode, whitening) comes from the checkpoint, not recomputed
             self.load_state_dict(state, argname="resume")
-
-    @property
-    def grad_evals(self) -> int:
-        """Score evaluations so far (particles x evaluations, set-up included)."""
-        return self.evaluate.count
-
-    @grad_evals.setter
-    def grad_evals(self, value: int) -> None:
-        self.evaluate.count = int(value)
 
     # ------------------------------------------------------------------ evaluation and direction
     def _evaluate(self, u: torch.Tensor, mask: torch.Tensor | None = None, *, affine=None, first: bool = False):
