@@ -1,4 +1,4 @@
-"""`st.race`: SVGD and Langevin side by side at equal score evaluations.
+"""`st.race`: SVGD, Langevin and NUTS side by side at equal score evaluations.
 
 Sources: closed-form Gaussian moments (reference draws from `scipy.stats.multivariate_normal`); the
 1-D Wasserstein distance of a translate, W1(X, X + c) = |c| (closed form), checked through
@@ -140,3 +140,30 @@ def test_flattened_names_with_gaps_or_zero_are_refused():
         reference_draws({"b[0]": draws})
     matrix = reference_draws({f"a[{i},{j}]": draws + 10 * i + j for i in (1, 2) for j in (1, 2, 3)})
     assert matrix["a"].shape == (10, 2, 3) and matrix["a"][0, 1, 2] == 23  # a[2,3] at 0-based [1, 2]
+
+
+# NUTS in a race: equal score-evaluation budgets, the path of measurements, time to tolerance
+def test_nuts_in_a_race_spends_the_budget_and_meets_the_tolerance():
+    budget = 12000
+    rows = st.race(gaussian_target(), reference_draws(), budget=budget, checkpoints=5,
+                   methods={"svgd": {"particles": 50}, "nuts": {"warmup": 200}})
+    svgd, nuts = rows
+    assert nuts["method"] == "nuts" and nuts["stop_reason"] == "budget"
+    # the run stops before a transition as costly as the last one would pass the budget: equal
+    # budgets within the cost of one transition
+    cost = np.diff(nuts["result"].history["grad_evals"])
+    assert budget - 3 * cost[-1] <= nuts["grad_evals"] <= budget + cost.max()
+    evals = [p["grad_evals"] for p in nuts["path"]]
+    assert evals == sorted(evals) and len(evals) >= 4
+    # closed form: NUTS meets the accuracy tolerance and holds it to the end
+    assert nuts["mean_error"] < 0.1 and 0.9 <= nuts["sd_ratio_min"] <= nuts["sd_ratio_max"] <= 1.1
+    assert nuts["evals_to_tolerance"] is not None and nuts["evals_to_tolerance"] <= nuts["grad_evals"]
+    assert nuts["seconds_to_tolerance"] <= nuts["seconds"]
+    assert nuts["result"].sample_stats["diverging"].shape[0] == 4
+
+
+def test_a_budget_that_ends_in_warm_up_gives_no_draws_and_no_tolerance():
+    rows = st.race(gaussian_target(), reference_draws(), budget=400, checkpoints=3, methods=["nuts"])
+    assert rows[0]["points"] == 0 and rows[0]["evals_to_tolerance"] is None
+    assert rows[0]["result"].particles.shape[1] == 0
+    assert any("no draws after warm-up" in w for w in rows[0]["result"].warnings)
