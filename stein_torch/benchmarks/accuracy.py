@@ -100,7 +100,7 @@ def svgd_over_nuts(rows: list[dict], key: str) -> str:
     found = {r["method"]: r[key] for r in rows}
     if found.get("svgd") is None or found.get("nuts") is None:
         return "-"
-    return f"{found['svgd'] / found['nuts']:.2f}"
+    return f"{found['svgd'] / found['nuts']:.3g}"
 
 
 EXACT_SUBSETS = 400  # random 200-draw subsets of the reference behind the "exact" line
