@@ -32,6 +32,7 @@ from .samplers import NUTS, Sampler, langevin
 from .samplers.loop import run_loop
 from .samplers.precondition import LAPLACE_MAX_DIM, Affine, laplace_whitening
 from .samplers.svgd import DEFAULT_STEPS
+from .samplers.threads import run_threads
 from .stein import ksd as kernel_stein_discrepancy
 
 __all__ = ["race", "plot_race", "accuracy", "reference_draws", "TOLERANCE"]
@@ -199,23 +200,24 @@ def _run_svgd(target, options, budget, checkpoints, meter, seed, progress):
     start = time.perf_counter()
     sampler = Sampler(target, particles, seed=seed, **opts)
     elapsed = time.perf_counter() - start
-    marks = set(np.unique(np.geomspace(1, steps, checkpoints).round().astype(int)).tolist())
-    z = sampler.affine.to_z(sampler.u).reshape(-1, target.dim).detach()
-    path = [{"grad_evals": sampler.grad_evals, "seconds": elapsed, **meter(z)}]  # the starting particles
-    clock = {"last": time.perf_counter()}
+    with run_threads(sampler.threads):  # the torch threads st.svgd would use for this size, measuring included
+        marks = set(np.unique(np.geomspace(1, steps, checkpoints).round().astype(int)).tolist())
+        z = sampler.affine.to_z(sampler.u).reshape(-1, target.dim).detach()
+        path = [{"grad_evals": sampler.grad_evals, "seconds": elapsed, **meter(z)}]  # the starting particles
+        clock = {"last": time.perf_counter()}
 
-    def measure(s):  # after each step: time the step, measure at the marks and at the end
-        nonlocal elapsed
-        now = time.perf_counter()
-        elapsed += now - clock["last"]
-        if s.step_count in marks or s.stop_reason != s.finished_reason or s.step_count == steps:
-            z = s.affine.to_z(s.u).reshape(-1, target.dim).detach()
-            path.append({"grad_evals": s.grad_evals, "seconds": elapsed, **meter(z)})
-        clock["last"] = time.perf_counter()  # measuring is not sampling time
+        def measure(s):  # after each step: time the step, measure at the marks and at the end
+            nonlocal elapsed
+            now = time.perf_counter()
+            elapsed += now - clock["last"]
+            if s.step_count in marks or s.stop_reason != s.finished_reason or s.step_count == steps:
+                z = s.affine.to_z(s.u).reshape(-1, target.dim).detach()
+                path.append({"grad_evals": s.grad_evals, "seconds": elapsed, **meter(z)})
+            clock["last"] = time.perf_counter()  # measuring is not sampling time
 
-    clock["last"] = time.perf_counter()
-    run_loop(sampler, steps, progress=progress, hooks=[measure])
-    return path, sampler.result()
+        clock["last"] = time.perf_counter()
+        run_loop(sampler, steps, progress=progress, hooks=[measure])
+        return path, sampler.result()
 
 
 def _run_langevin(target, options, budget, checkpoints, meter, seed, progress):
@@ -302,7 +304,7 @@ def race(
         Score evaluations per method (particles x steps for SVGD, with the stop rule off unless
         given; chains x (1 + warmup + draws) for Langevin, warmup = half; NUTS: its warm-up (500 by
         default), then draws until the next transition, as costly as the last, would pass the
-        budget). None: each method's own defaults (SVGD: the default run, at most 400 steps with the
+        budget). None: each method's own defaults (SVGD: the default run, at most 1000 steps with the
         default stop rule; Langevin: 1000 warmup + 1000 draws; NUTS: 500 warm-up + 1000 draws).
     methods : list of str or dict of str to dict, optional
         Names among {"svgd", "mala", "ula", "nuts"}, or label -> options, e.g.

@@ -167,3 +167,22 @@ def test_a_budget_that_ends_in_warm_up_gives_no_draws_and_no_tolerance():
     assert rows[0]["points"] == 0 and rows[0]["evals_to_tolerance"] is None
     assert rows[0]["result"].particles.shape[1] == 0
     assert any("no draws after warm-up" in w for w in rows[0]["result"].warnings)
+
+
+def test_race_runs_svgd_with_the_threads_svgd_would_use_and_restores_the_callers():
+    # a small SVGD run uses one torch thread (stein_torch.samplers.threads), in st.race as in st.svgd
+    seen = []
+
+    def log_prob(x):
+        if x.shape[:-1].numel() == 20:  # the particles (the race's own whitening scores single points)
+            seen.append(torch.get_num_threads())
+        return -0.5 * (x * x).sum(-1)
+
+    before = torch.get_num_threads()
+    torch.set_num_threads(2)
+    try:
+        st.race(st.Target(log_prob, dim=2), methods={"svgd": {"method": "svgd", "particles": 20, "steps": 5}}, seed=0)
+        assert len(seen) >= 5 and set(seen) == {1}
+        assert torch.get_num_threads() == 2
+    finally:
+        torch.set_num_threads(before)
