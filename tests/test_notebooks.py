@@ -14,8 +14,8 @@ import pytest
 
 pytestmark = pytest.mark.slow  # a fresh kernel per notebook: run with `pytest -m slow` (CI runs both)
 
-nbformat = pytest.importorskip("nbformat")
-nbclient = pytest.importorskip("nbclient")
+import nbclient  # noqa: E402  test extras: a missing one fails the suite, never skips it
+import nbformat  # noqa: E402
 
 NOTEBOOKS = pathlib.Path(__file__).resolve().parent.parent / "notebooks"
 TIMEOUT_S = 600  # per cell; a guard against a hung kernel, not a speed assert
