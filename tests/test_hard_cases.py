@@ -97,7 +97,11 @@ def test_banana_reaches_the_level_of_exact_draws():
 
     exact = [w1(ref[rng.choice(len(ref), 200, replace=False)]) for _ in range(100)]
     run = default_run(case, 0)
-    assert w1(run.draws["x"][0].numpy()) <= np.quantile(exact, 0.9), (run.settings["steps"], np.median(exact))
+    got = w1(run.draws["x"][0].numpy())
+    print(f"banana2d seed 0: stopped at step {run.settings['steps']} ({run.stop_reason}), W1/sd {got:.3f}; "
+          f"200 exact draws: median {np.median(exact):.3f}, 10-90% {np.quantile(exact, 0.1):.3f}-"
+          f"{np.quantile(exact, 0.9):.3f}; warnings: {len(run.warnings)}")  # seen with pytest -s
+    assert got <= np.quantile(exact, 0.9), (run.settings["steps"], np.median(exact))
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
