@@ -35,7 +35,7 @@ from .samplers.nuts import DEFAULT_CHAINS, DEFAULT_DRAWS, nuts
 __all__ = ["crosscheck", "Crosscheck", "FAMILY_LEVEL", "default_draws"]
 
 FAMILY_LEVEL = 0.01   # chance that a correct run is flagged on any parameter (Bonferroni bound)
-EVALS_PER_PARTICLE = 4  # NUTS draws per SVGD particle: NUTS's Monte Carlo error small next to SVGD's
+DRAWS_PER_PARTICLE = 4  # NUTS draws per SVGD particle: NUTS's Monte Carlo error small next to SVGD's
 
 
 class Crosscheck(list):
@@ -94,8 +94,8 @@ class Crosscheck(list):
 
 def default_draws(particles: int, chains: int = DEFAULT_CHAINS) -> int:
     """NUTS draws per chain for a result of ``particles`` points: the default 1000, more when
-    ``EVALS_PER_PARTICLE`` x particles need it, so NUTS's Monte Carlo error stays small next to SVGD's."""
-    return max(DEFAULT_DRAWS, math.ceil(EVALS_PER_PARTICLE * particles / chains))
+    ``DRAWS_PER_PARTICLE`` x particles need it, so NUTS's Monte Carlo error stays small next to SVGD's."""
+    return max(DEFAULT_DRAWS, math.ceil(DRAWS_PER_PARTICLE * particles / chains))
 
 
 def crosscheck(result: Result, target: Target, *, chains: int = DEFAULT_CHAINS, draws: int | None = None,

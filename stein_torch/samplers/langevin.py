@@ -99,7 +99,7 @@ class Langevin(CountsEvaluations):
             # set to estimate from here, so it means no whitening, as None does)
             if self.precondition == "covariance":
                 setup.precondition = None
-            start = starting_points(setup, self.evaluate, (self.chains,), starts=1)  # one search, as before
+            start = starting_points(setup, self.evaluate, (self.chains,), starts=1)  # one search
             self.affine, self.laplace_ok, self.u, self.lp, self.score = start.affine, start.laplace_ok, start.u, start.lp, start.score
         else:
             self.load_state_dict(state, argname="resume")

@@ -6,9 +6,9 @@ All chains advance as one (chains, dim) tensor, one batched score evaluation per
 arXiv:1701.02434). The chains run on the coordinates of :func:`.setup.starting_points` (the
 unconstrained space by default; whitened by the Laplace map at the mode on request), where warm-up
 (:mod:`.warmup`) adapts a per-chain step size by dual averaging and a diagonal or dense metric
-shared by the chains. A point where the model
-is not finite (or raises) ends its trajectory as a divergence. One ``step()`` is one transition of
-every chain; the shared loop (:func:`.loop.run_loop`) gives the progress bar, Ctrl-C and checkpoints.
+shared by the chains. A point where the model is not finite (or raises) ends its trajectory as a
+divergence. One ``step()`` is one transition of every chain; the shared loop (:func:`.loop.run_loop`)
+gives the progress bar, Ctrl-C and checkpoints.
 """
 
 from __future__ import annotations
@@ -26,7 +26,7 @@ from ..result import Result
 from .mcmc_health import mcmc_warnings
 from .faults import CountsEvaluations, Evaluator
 from .loop import append_history, check_run_options, run_loop
-from .metric import make_metric
+from .metric import METRICS, make_metric
 from .precondition import Affine
 from .setup import configure, starting_points
 from .state import CHAIN_KEYS, chain_state, check_common, common_state, read_chain_state, restore_common, restore_parts
@@ -75,7 +75,7 @@ class NUTS(CountsEvaluations):
         self.seed, self.generator = setup.seed, setup.generator
         if metric is None:
             metric = "dense" if self.target.dim <= DENSE_MAX_DIM else "diag"
-        self.metric_kind = check_choice(metric, "nuts: metric", ("diag", "dense"))
+        self.metric_kind = check_choice(metric, "nuts: metric", METRICS)
         # the metric adaptation is the covariance whitening here: "covariance" means no fixed map
         self.precondition = None if setup.precondition == "covariance" else setup.precondition
         setup.precondition = self.precondition
@@ -194,8 +194,7 @@ class NUTS(CountsEvaluations):
         z = self.affine.to_z(self.kept[:, :kept])
         history = {k: np.asarray(v) for k, v in self.history.items()}
         settings = {**self.settings(), "method": self.name, "draws": kept, "grad_evals": self.grad_evals,
-                    "step_size": [float(e) for e in self.eps],
-                    "warmup_divergences": int(history["diverging"][: self.warmup].sum()) if history else 0}
+                    "step_size": [float(e) for e in self.eps]}
         return _result(self.target, z, self.kept_lp[:, :kept].clone(), self.kept_stats, kept, history, settings,
                        self.stop_reason)
 
@@ -214,6 +213,7 @@ class NUTS(CountsEvaluations):
 
 
 def _result(target, z, lp, kept_stats, kept, history, settings, stop_reason) -> Result:
+    settings["warmup_divergences"] = int(history["diverging"][: int(settings["warmup"])].sum()) if history else 0
     stats = {k: v[:, :kept].copy() for k, v in kept_stats.items()}
     result = Result(target, z, lp, history, settings, stop_reason, stats)
     result.warnings = mcmc_warnings(result.draws, stats, int(settings["max_depth"]))

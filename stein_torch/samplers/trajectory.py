@@ -111,7 +111,7 @@ class NoUTurnTransition:
         threshold, neg_inf = -self.max_energy_error, torch.tensor(-torch.inf, dtype=dtype, device=device)
         momentum = metric.sample_momentum(n_chains, generator)
         velocity = velocity_of(momentum)
-        energy0 = 0.5 * torch.linalg.vecdot(momentum, velocity) - log_density
+        energy0 = metric.kinetic_energy(momentum, velocity) - log_density
         coins = torch.rand((2, self.max_depth, n_chains), generator=generator, dtype=dtype).to(device)
         forward_rows, log_u_rows = (coins[0] < 0.5).unbind(0), coins[1].log().unbind(0)
         steps_fw = step_size.to(dtype)[:, None]
@@ -169,7 +169,7 @@ class NoUTurnTransition:
                 else:
                     key = log_w - log_e[n]
                     take = key > best
-                    if n < 4 or bool(take.any()):
+                    if n < 4 or bool(take.any()):              # early points are often taken: no sync
                         best = where(take, key, best)
                         point = torch.cat([x, g, stack([lp, log_w], 1)], 1)
                         sub_draw = where(take[:, None], point, sub_draw)
