@@ -31,6 +31,7 @@ import torch
 
 from .faults import wall_message
 from .importance import mode_shares, spread_check
+from .monitor import moments
 
 __all__ = ["run_warnings", "THRESHOLDS"]
 
@@ -68,9 +69,10 @@ def run_warnings(sampler, z: torch.Tensor) -> list[str]:
             "from standard normal draws with covariance whitening; check the model for an unbounded or "
             "undefined density."
         )
-    faults = np.asarray(history.get("faults", []))[-min(WALL_WINDOW, max(WALL_LAST, steps // 2)):]
+    last = min(WALL_WINDOW, max(WALL_LAST, steps // 2))
+    faults = np.asarray(history.get("faults", []))[-last:]
     if len(faults) >= WALL_LAST and np.mean(faults > 0) >= THRESHOLDS["wall_share"]:
-        reverted = int(np.asarray(history["reverted"])[-WALL_WINDOW:].sum())
+        reverted = int(np.asarray(history["reverted"])[-last:].sum())  # over the same steps as the faults
         found.append(wall_message(steps, int((faults > 0).sum()), len(faults), int(faults.sum()), reverted,
                                   sampler.ensembles * sampler.n, sampler.last_fault_error))
     if sampler.ensembles >= 2:
@@ -122,8 +124,6 @@ def second_half_drift(sampler) -> tuple[float, int, int] | None:
     start = half[-1]
     end_log_sd = trace[-1][2] if trace[-1][0] == steps else None
     if end_log_sd is None:  # the end of the run is after the last record
-        from .monitor import moments
-
         end_log_sd = moments(sampler.affine.to_z(sampler.u))[1]
     change = end_log_sd - start[2]
     flat = int(change.abs().reshape(-1).argmax())

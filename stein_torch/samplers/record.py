@@ -8,14 +8,12 @@ it and a resumed run warns as the uninterrupted one would.
 
 from __future__ import annotations
 
-from typing import Mapping
+from typing import Callable, Mapping
 
 import numpy as np
-import torch
 
 from ..result import Result
 from .diagnostics import run_warnings
-from .monitor import moments
 from .precondition import Affine
 
 __all__ = ["RunRecord", "svgd_result", "svgd_result_from_state"]
@@ -49,10 +47,12 @@ class RunRecord:
         self.setup = {"setup_evals": start.search.evaluations, "modes": len(kept), "runaways": start.search.runaways,
                       "starts": start.search.starts, "mode_counts": list(start.mode_counts or [])}
 
-    def note_moments(self, step: int, z: torch.Tensor) -> None:
-        """Record the moments of particles z (B, N, d) after ``step`` steps (once per step)."""
+    def note_moments(self, step: int, moments: Callable[[], tuple]) -> None:
+        """Record the moments of the particles after ``step`` steps (once per step); ``moments()``
+        gives their mean and log sd (B, d) (:meth:`stein_torch.samplers.monitor.Watch.moments`), asked
+        only when the step is not recorded yet."""
         if not self.moments or self.moments[-1][0] != step:
-            self.moments.append((int(step), *moments(z)))
+            self.moments.append((int(step), *moments()))
 
     def state_dict(self) -> dict:
         return {

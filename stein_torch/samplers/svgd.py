@@ -155,10 +155,11 @@ class Sampler(CountsEvaluations):
     def _step(self) -> None:
         drive = self.drive(self.step_count)
         phi = self.direction(self.u, self.score, self.lp)
+        # one Watch per step: the moment record and the stop rule share its z and moments (computed on demand)
+        watch = Watch(self.u, self.score, phi, self.affine, self.stepper.step_size, self.ksd, self.axis.rows, self.axis.sum)
         if self.step_count % KSD_EVERY == 0:
-            self.record.note_moments(self.step_count, self.affine.to_z(self.u))
-        if self.stop_rule is not None and self.stop_rule.check(self.step_count, Watch(  # before moving the particles
-                self.u, self.score, phi, self.affine, self.stepper.step_size, self.ksd, self.axis.rows, self.axis.sum)):
+            self.record.note_moments(self.step_count, watch.moments)
+        if self.stop_rule is not None and self.stop_rule.check(self.step_count, watch):  # before moving the particles
             self.stop_reason = self.stop_rule.reason
             return
         self._last_velocity_eval = None
@@ -342,7 +343,9 @@ def svgd(
         the chains of the InferenceData, so ``arviz.rhat`` compares them.
     init : {None, "prior", "laplace"}, Tensor or dict, optional
         Starting particles. None / "laplace": draws from the Laplace approximation at the mode
-        (or a standard normal on the unconstrained space without whitening). "prior": prior draws
+        (with Laplace preconditioning, L-BFGS runs from several starts and the particles are split
+        among the modes kept in proportion to their Laplace masses; a standard normal on the
+        unconstrained space without whitening or when no mode is found). "prior": prior draws
         (targets from :meth:`Target.from_priors`). A tensor (flat targets) or dict name -> tensor of
         constrained values, shape (particles, ...) or (ensembles, particles, ...).
     dtype : torch.dtype, default=torch.float64
@@ -350,7 +353,7 @@ def svgd(
     precondition : {"auto", "laplace", "covariance", None}, default="auto"
         "laplace": find the mode by L-BFGS, whiten coordinates by the curvature there and start
         from that Laplace approximation; then re-whiten by the particles' own mean and covariance
-        (per ensemble) at steps 25, 50, 100, 200, ... "covariance": the re-whitening only.
+        (per ensemble) at steps 25, 50, 100, 200 and 400. "covariance": the re-whitening only.
         "auto": "laplace" up to 1000 coordinates, "covariance" above. None: plain coordinates.
         A target's declared default wins under "auto" (module targets: None).
     progress : bool, optional
