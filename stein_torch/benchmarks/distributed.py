@@ -122,6 +122,7 @@ def worker(config: dict) -> dict | None:
         barrier()
         start, cpu_start = time.perf_counter(), time.process_time()
         for _ in range(config["steps"]):
+            sampler.stop_together(False)  # the per-step agreement of run_loop (one small exchange)
             sampler.step()
         cpu = (time.process_time() - cpu_start) / config["steps"]  # this process, all its threads
         barrier()

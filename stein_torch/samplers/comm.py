@@ -24,11 +24,17 @@ import time
 import torch
 import torch.distributed as dist
 
-__all__ = ["Comm", "RankFailure", "HEARTBEAT_SECONDS", "SILENT_SECONDS", "DIAGNOSE_SECONDS"]
+__all__ = ["Comm", "RankFailure", "block_counts", "HEARTBEAT_SECONDS", "SILENT_SECONDS", "DIAGNOSE_SECONDS"]
 
 HEARTBEAT_SECONDS = 0.5  # each process bumps its counter in the store this often during a run
 SILENT_SECONDS = 2.5  # a process whose counter did not move for this long has died (or is frozen)
 DIAGNOSE_SECONDS = 6.0  # longest wait for the store to tell which process stopped
+
+
+def block_counts(n: int, world: int) -> list[int]:
+    """Sizes of ``world`` contiguous blocks of n items (particles or observations), the first n % world
+    one larger: the ``counts`` of :meth:`Comm.gather_rows` and :meth:`Comm.gather_last_to_lead`."""
+    return [n // world + (1 if r < n % world else 0) for r in range(world)]
 
 
 class RankFailure(RuntimeError):

@@ -15,17 +15,14 @@ import torch
 
 from ..model import Target
 from ..model.data import likelihood_groups, pointwise_log_likelihood
+from .comm import block_counts
 
 __all__ = ["ShardedTarget", "observation_split", "gather_likelihood"]
 
 
-def _counts(n_obs: int, world: int) -> list[int]:
-    return [n_obs // world + (1 if r < n_obs % world else 0) for r in range(world)]
-
-
 def observation_split(n_obs: int, comm) -> tuple[int, int]:
     """Observations ``(lo, hi)`` of this rank: contiguous blocks, the first n_obs % R one larger."""
-    counts = _counts(n_obs, comm.world)
+    counts = block_counts(n_obs, comm.world)
     lo = sum(counts[: comm.rank])
     return lo, lo + counts[comm.rank]
 
@@ -96,10 +93,8 @@ def gather_likelihood(target: Target, particles: torch.Tensor, comm) -> dict | N
         Unconstrained particles (the same on every rank).
     """
     data = target.data
-    counts = _counts(data.n_obs, comm.world)
-    lo = sum(counts[: comm.rank])
-    local = pointwise_log_likelihood(target, particles, observations=(lo, lo + counts[comm.rank]))
-    full = comm.gather_last_to_lead(torch.from_numpy(np.ascontiguousarray(local)), counts)
+    local = pointwise_log_likelihood(target, particles, observations=observation_split(data.n_obs, comm))
+    full = comm.gather_last_to_lead(torch.from_numpy(np.ascontiguousarray(local)), block_counts(data.n_obs, comm.world))
     if full is None:
         return None
     return likelihood_groups(target, particles, values=full.numpy())

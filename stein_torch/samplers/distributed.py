@@ -30,6 +30,7 @@ import datetime
 import hashlib
 import os
 import secrets
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -38,7 +39,7 @@ import torch.distributed as dist
 
 from ..checks import check_choice, check_int, check_real
 from .axis import ParticleAxis
-from .comm import Comm, RankFailure
+from .comm import Comm, RankFailure, block_counts
 from .data_shards import ShardedTarget, gather_likelihood, observation_split
 from .state import plain_repr
 
@@ -83,11 +84,6 @@ def as_sharding(value) -> Sharding | None:
     raise ValueError(
         f"distributed must be None, False, True, 'particles', 'data' or st.Sharding(...); got {value!r}"
     )
-
-
-def block_counts(n: int, world: int) -> list[int]:
-    """Sizes of ``world`` contiguous blocks of n items, the first n % world one larger."""
-    return [n // world + (1 if r < n % world else 0) for r in range(world)]
 
 
 class DistributedAxis(ParticleAxis):
@@ -148,7 +144,8 @@ class DistributedAxis(ParticleAxis):
         total = particles.detach().double().sum().reshape(1).cpu()
         rows = torch.stack(self.comm.gather(torch.cat([torch.tensor([float(requested)], dtype=torch.float64), total])))
         sums = rows[:, 1]
-        if not torch.equal(sums.view(torch.int64), sums[:1].expand_as(sums).contiguous().view(torch.int64)):
+        bits = sums.view(torch.int64)  # bit for bit: NaN sums equal on every rank still agree
+        if (bits != bits[0]).any():
             spread = float((sums - sums[0]).abs().max()) / max(1.0, float(sums.abs().max()))
             if not spread < 1e-6:
                 raise RuntimeError(
@@ -156,8 +153,6 @@ class DistributedAxis(ParticleAxis):
                     "rank must run the same script with the same torch build and number of threads"
                 )
             if not self._warned:
-                import warnings
-
                 warnings.warn(f"the ranks' particles differ in the last digits ({spread:.1e} relative): different "
                               "CPU types or thread counts per rank; results match one process only to rounding",
                               RuntimeWarning, stacklevel=2)
@@ -183,6 +178,12 @@ class Shard:
         None: one process.
     lead : bool
         This process writes files and shows progress (rank 0).
+    mode : {"particles", "data"} or None
+        None: one process.
+    user_target : Target or None
+        The target the user passed (what the :class:`Result` carries).
+    comm : Comm or None
+        The run's exchanges.
     """
 
     target: object
