@@ -43,7 +43,7 @@ METRIC_LABELS = {"w1": "W1 / reference sd (mean over parameters)", "mean_error":
                  "sd_ratio_max": "largest sd / reference sd"}
 SVGD_OPTIONS = {"particles", "ensembles", "kernel", "stepper", "steps", "stop", "precondition", "dtype", "init"}
 LANGEVIN_OPTIONS = {"chains", "draws", "warmup", "step_size", "precondition", "dtype", "init"}
-NUTS_OPTIONS = {"chains", "draws", "warmup", "metric", "max_depth", "target_accept", "precondition", "dtype", "init"}
+NUTS_OPTIONS = {"chains", "draws", "warmup", "metric", "depth_limit", "acceptance_goal", "precondition", "dtype", "init"}
 
 
 def accuracy(draws: Mapping[str, np.ndarray], reference: Mapping[str, np.ndarray]) -> dict[str, float]:

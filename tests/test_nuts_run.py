@@ -165,8 +165,8 @@ def test_points_where_the_model_raises_are_divergences_not_crashes():
     (dict(draws=-5), r"nuts: draws == -5, must be >= 1"),
     (dict(warmup=100), r"nuts: warmup == 100; expected 0 \(no adaptation\) or at least 175 iterations"),
     (dict(metric="full"), r"nuts: metric must be one of 'diag', 'dense'; got 'full'"),
-    (dict(target_accept=1.5), r"nuts: target_accept == 1.5, must lie in \(0, 1\)"),
-    (dict(max_depth=0), r"nuts: max_depth == 0, must be >= 1"),
+    (dict(acceptance_goal=1.5), r"nuts: acceptance_goal == 1.5, must lie in \(0, 1\)"),
+    (dict(depth_limit=0), r"nuts: depth_limit == 0, must be >= 1"),
 ])
 def test_bad_arguments_are_named(kwargs, pattern):
     with pytest.raises((ValueError, TypeError), match=pattern):

@@ -114,20 +114,20 @@ def test_bad_points_act_as_a_wall_and_are_reported():
 
 
 def test_max_depth_caps_the_trajectory():
-    # arXiv:1111.4246: at most 2^max_depth - 1 leapfrog steps
+    # arXiv:1111.4246: at most 2^depth_limit - 1 leapfrog steps
     x0 = torch.zeros(4, 2, dtype=torch.float64)
 
     def flat_ish(y):
         return -0.5e-6 * (y * y).sum(1), -1e-6 * y, torch.zeros(y.shape[0], dtype=torch.bool)
 
-    _, _, _, stats = _run(flat_ish, x0, DiagonalMetric(torch.ones(2, dtype=torch.float64)), 0.01, 3, max_depth=3)
+    _, _, _, stats = _run(flat_ish, x0, DiagonalMetric(torch.ones(2, dtype=torch.float64)), 0.01, 3, depth_limit=3)
     for s in stats:
         assert torch.all(s["tree_depth"] == 3) and torch.all(s["n_steps"] == 7)
 
 
 def test_argument_errors():
-    with pytest.raises(ValueError, match="max_depth: expected an integer in \\[1, 30\\], got 0"):
-        NoUTurnTransition(max_depth=0)
+    with pytest.raises(ValueError, match="depth_limit: expected an integer in \\[1, 30\\], got 0"):
+        NoUTurnTransition(depth_limit=0)
     with pytest.raises(ValueError, match="max_energy_error: expected a positive number, got -1"):
         NoUTurnTransition(max_energy_error=-1)
 
@@ -178,14 +178,14 @@ def _subtree(states, inv_mass):
     return _merge_ok(states[:half], states[half:], inv_mass), len(states)
 
 
-def _reference(x0, calls, eps, inv_mass, max_depth):
+def _reference(x0, calls, eps, inv_mass, depth_limit):
     """Replay the recorded points with the recursive algorithm; return (depth, n_steps)."""
     x1 = calls[0]
     p0 = torch.linalg.solve(inv_mass, (x1 - x0) / eps) - 0.5 * eps * _gauss(x0[None])[1][0]
     forward_end, backward_end = (x0, p0), (x0, p0)       # direction of the first step taken as forward
     trajectory_fw, trajectory_bw = [(x0, p0)], []
     used, j = 0, 0
-    while j < max_depth:
+    while j < depth_limit:
         size = 1 << j
         segment = calls[used:used + size]
         new, state = [], forward_end
@@ -229,9 +229,9 @@ def test_stops_where_the_recursive_algorithm_stops(seed):
         return _gauss(x)
 
     lp, grad, _ = _gauss(x0)
-    max_depth = 10
-    _, _, _, stats = NoUTurnTransition(max_depth=max_depth)(
+    depth_limit = 10
+    _, _, _, stats = NoUTurnTransition(depth_limit=depth_limit)(
         x0, lp, grad, torch.tensor([eps], dtype=torch.float64), DenseMetric(inv_mass), recording, g)
-    depth, n_steps = _reference(x0[0], calls, eps, inv_mass, max_depth)
+    depth, n_steps = _reference(x0[0], calls, eps, inv_mass, depth_limit)
     assert n_steps == len(calls) == int(stats["n_steps"][0])
     assert depth == int(stats["tree_depth"][0])

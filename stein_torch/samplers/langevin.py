@@ -186,7 +186,7 @@ class Langevin(CountsEvaluations):
         z = self.affine.to_z(self.kept[:, :kept])
         settings = {
             "method": self.name, "chains": self.chains, "draws": kept, "warmup": self.warmup,
-            "step_size": self.eps, "target_accept": TARGET_ACCEPT, "precondition": str(self.precondition),
+            "step_size": self.eps, "acceptance_goal": TARGET_ACCEPT, "precondition": str(self.precondition),
             "seed": self.seed, "dtype": str(self.dtype).replace("torch.", ""), "grad_evals": self.grad_evals,
         }
         history = {k: np.asarray(v) for k, v in self.history.items()}

@@ -4,7 +4,7 @@ The figures and the thresholds that turn them into warnings:
 
 - divergences after warm-up above 1% of the draws (each divergent transition is still counted in
   ``sample_stats["diverging"]``);
-- trajectories cut at ``max_depth`` (the sampler hit its limit: mixing may be poor);
+- trajectories cut at ``depth_limit`` (the sampler hit its limit: mixing may be poor);
 - E-BFMI below 0.3 in a chain ("Diagnosing Suboptimal Cotangent Disintegrations in Hamiltonian Monte
   Carlo", arXiv:1604.00695; the threshold is common practice, from memory);
 - rank-normalised split R-hat above 1.01 or bulk ESS below 100 per chain for a scalar parameter
@@ -93,7 +93,7 @@ def _listed(names: list[str], values: np.ndarray, fmt: str) -> str:
     return ", ".join(shown) + more
 
 
-def mcmc_warnings(draws: Mapping[str, object], stats: Mapping[str, np.ndarray], max_depth: int) -> list[str]:
+def mcmc_warnings(draws: Mapping[str, object], stats: Mapping[str, np.ndarray], depth_limit: int) -> list[str]:
     """Why these draws may be wrong; empty when nothing was seen.
 
     Parameters
@@ -102,7 +102,7 @@ def mcmc_warnings(draws: Mapping[str, object], stats: Mapping[str, np.ndarray], 
         Draws after warm-up, by parameter.
     stats : mapping of str to ndarray of shape (C, n)
         ``diverging``, ``tree_depth``, ``energy``.
-    max_depth : int
+    depth_limit : int
 
     Returns
     -------
@@ -119,12 +119,12 @@ def mcmc_warnings(draws: Mapping[str, object], stats: Mapping[str, np.ndarray], 
         found.append(
             f"{divergences} of {total} draws after warm-up ({divergences / total:.1%}) ended in a divergent "
             "transition: regions of high curvature were not explored and the draws may be biased; reparameterise "
-            "the model (e.g. a non-centred form of a hierarchical prior), or raise target_accept")
-    cut = int((np.asarray(stats["tree_depth"]) >= max_depth).sum())
+            "the model (e.g. a non-centred form of a hierarchical prior), or raise acceptance_goal")
+    cut = int((np.asarray(stats["tree_depth"]) >= depth_limit).sum())
     if cut:
         found.append(
-            f"{cut} of {total} trajectories were cut at max_depth={max_depth}: the sampler hit its limit and "
-            "may mix poorly; reparameterise the model or raise max_depth")
+            f"{cut} of {total} trajectories were cut at depth_limit={depth_limit}: the sampler hit its limit and "
+            "may mix poorly; reparameterise the model or raise depth_limit")
     low = np.flatnonzero(health["bfmi"] < BFMI_MIN)
     if low.size:
         shown = ", ".join(f"chain {c} ({health['bfmi'][c]:.2f})" for c in low)

@@ -30,7 +30,7 @@ from .metric import METRICS, make_metric
 from .precondition import Affine
 from .setup import configure, starting_points
 from .state import CHAIN_KEYS, chain_state, check_common, common_state, read_chain_state, restore_common, restore_parts
-from .trajectory import DEFAULT_MAX_DEPTH, DEFAULT_MAX_ENERGY_ERROR, NoUTurnTransition
+from .trajectory import DEFAULT_DEPTH_LIMIT, DEFAULT_MAX_ENERGY_ERROR, NoUTurnTransition
 from .warmup import Warmup, WarmupSchedule, initial_step_size
 
 __all__ = ["nuts", "NUTS", "DEFAULT_CHAINS", "DEFAULT_DRAWS", "DEFAULT_WARMUP", "TARGET_ACCEPT",
@@ -59,15 +59,15 @@ class NUTS(CountsEvaluations):
     finished_reason = "draws"
 
     def __init__(self, target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmup: int = DEFAULT_WARMUP,
-                 *, metric: str | None = None, max_depth: int = DEFAULT_MAX_DEPTH, target_accept: float = TARGET_ACCEPT,
-                 init=None, precondition: str | None = None, dtype: torch.dtype = torch.float64,
+                 *, metric: str | None = None, depth_limit: int = DEFAULT_DEPTH_LIMIT,
+                 acceptance_goal: float = TARGET_ACCEPT, init=None, precondition: str | None = None, dtype: torch.dtype = torch.float64,
                  seed: int | None = None, device=None, state: Mapping | None = None):
         self.chains = check_int(chains, "nuts: chains")
         self.draws = check_int(draws, "nuts: draws")
         self.schedule = WarmupSchedule(warmup)
         self.warmup = self.schedule.warmup
-        self.max_depth = check_int(max_depth, "nuts: max_depth", maximum=30)
-        self.target_accept = check_real(target_accept, "nuts: target_accept", low=0, high=1, low_open=True,
+        self.depth_limit = check_int(depth_limit, "nuts: depth_limit", maximum=30)
+        self.acceptance_goal = check_real(acceptance_goal, "nuts: acceptance_goal", low=0, high=1, low_open=True,
                                         high_open=True)
         setup = configure(target, init=init, dtype=dtype, precondition=precondition, seed=seed, device=device,
                           state=state)
@@ -79,7 +79,7 @@ class NUTS(CountsEvaluations):
         # the metric adaptation is the covariance whitening here: "covariance" means no fixed map
         self.precondition = None if setup.precondition == "covariance" else setup.precondition
         setup.precondition = self.precondition
-        self.transition = NoUTurnTransition(self.max_depth, DEFAULT_MAX_ENERGY_ERROR)
+        self.transition = NoUTurnTransition(self.depth_limit, DEFAULT_MAX_ENERGY_ERROR)
         self.evaluate = Evaluator(self.target)
         self.metric = make_metric(self.metric_kind, self.target.dim, self.dtype, self.device)
         self.stop_reason, self.step_count, self.elapsed = self.finished_reason, 0, 0.0
@@ -94,7 +94,7 @@ class NUTS(CountsEvaluations):
             self.eps = initial_step_size(self.u, self.lp, self.score, self.metric, self._evaluate, self.generator)
         else:
             self.eps = np.ones(c)
-        self.adaptation = (Warmup(self.eps, d, self.schedule, self.metric_kind, self.target_accept)
+        self.adaptation = (Warmup(self.eps, d, self.schedule, self.metric_kind, self.acceptance_goal)
                            if self.warmup else None)
         self.setup_seconds = time.perf_counter() - started
         if state is not None:
@@ -158,7 +158,7 @@ class NUTS(CountsEvaluations):
     def settings(self) -> dict:
         """Settings a continued run must share with the saved one."""
         return {"chains": self.chains, "draws": self.draws, "warmup": self.warmup, "metric": self.metric_kind,
-                "max_depth": self.max_depth, "target_accept": self.target_accept,
+                "depth_limit": self.depth_limit, "acceptance_goal": self.acceptance_goal,
                 "dtype": str(self.dtype).replace("torch.", ""), "precondition": str(self.precondition),
                 "seed": self.seed}
 
@@ -216,7 +216,7 @@ def _result(target, z, lp, kept_stats, kept, history, settings, stop_reason) -> 
     settings["warmup_divergences"] = int(history["diverging"][: int(settings["warmup"])].sum()) if history else 0
     stats = {k: v[:, :kept].copy() for k, v in kept_stats.items()}
     result = Result(target, z, lp, history, settings, stop_reason, stats)
-    result.warnings = mcmc_warnings(result.draws, stats, int(settings["max_depth"]))
+    result.warnings = mcmc_warnings(result.draws, stats, int(settings["depth_limit"]))
     return result
 
 
@@ -232,8 +232,8 @@ def _start(setup, evaluate, chains: int):
 
 def nuts(target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmup: int = DEFAULT_WARMUP,
          seed: int | None = None, metric: str | None = None, init=None, progress: bool | None = None, *,
-         max_depth: int = DEFAULT_MAX_DEPTH, target_accept: float = TARGET_ACCEPT, precondition: str | None = None,
-         dtype: torch.dtype = torch.float64, device=None, checkpoint=None, checkpoint_every: int | None = None,
+         depth_limit: int = DEFAULT_DEPTH_LIMIT, acceptance_goal: float = TARGET_ACCEPT,
+         precondition: str | None = None, dtype: torch.dtype = torch.float64, device=None, checkpoint=None, checkpoint_every: int | None = None,
          resume=None) -> Result:
     """Sample by the no-U-turn sampler, all chains batched.
 
@@ -260,9 +260,9 @@ def nuts(target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmu
     progress : bool, optional
         Progress bar (draws, divergences so far, step size, tree depth); default on when stderr is a
         terminal.
-    max_depth : int, default=10
-        Most tree doublings per transition (at most 2**max_depth - 1 leapfrog steps).
-    target_accept : float, default=0.8
+    depth_limit : int, default=10
+        Most tree doublings per transition (at most 2**depth_limit - 1 leapfrog steps).
+    acceptance_goal : float, default=0.8
         Mean acceptance statistic that dual averaging aims the step size at; raise it (0.9, 0.95)
         when divergences are reported.
     precondition : {None, "laplace", "auto", "covariance"}, default=None
@@ -284,7 +284,7 @@ def nuts(target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmu
         InferenceData, so :func:`arviz.rhat`, :func:`arviz.ess`, :func:`arviz.bfmi` and
         :func:`arviz.plot_energy` apply; ``history`` per transition (warm-up included);
         ``warnings`` (also issued as RuntimeWarning): divergences above 1% of the draws, trajectories
-        cut at max_depth, low E-BFMI, R-hat above 1.01, low bulk ESS.
+        cut at depth_limit, low E-BFMI, R-hat above 1.01, low bulk ESS.
 
     Raises
     ------
@@ -301,8 +301,8 @@ def nuts(target, chains: int = DEFAULT_CHAINS, draws: int = DEFAULT_DRAWS, warmu
     """
     _, progress, checkpoint, _ = check_run_options(0, progress, checkpoint, checkpoint_every)
     state = io.load_checkpoint(resume, "resume") if resume is not None else None
-    sampler = NUTS(target, chains, draws, warmup, metric=metric, max_depth=max_depth, target_accept=target_accept,
-                   init=init, precondition=precondition, dtype=dtype, seed=seed, device=device, state=state)
+    sampler = NUTS(target, chains, draws, warmup, metric=metric, depth_limit=depth_limit,
+                   acceptance_goal=acceptance_goal, init=init, precondition=precondition, dtype=dtype, seed=seed, device=device, state=state)
     sampler.run(progress=progress, checkpoint=checkpoint, checkpoint_every=checkpoint_every)
     result = sampler.result()
     for message in result.warnings:

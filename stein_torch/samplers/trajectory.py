@@ -41,7 +41,7 @@ from typing import Callable
 
 import torch
 
-__all__ = ["NoUTurnTransition", "Evaluate", "DEFAULT_MAX_DEPTH", "DEFAULT_MAX_ENERGY_ERROR"]
+__all__ = ["NoUTurnTransition", "Evaluate", "DEFAULT_DEPTH_LIMIT", "DEFAULT_MAX_ENERGY_ERROR"]
 
 Evaluate = Callable[[torch.Tensor], "tuple[torch.Tensor, torch.Tensor, torch.Tensor]"]
 
@@ -49,7 +49,7 @@ Evaluate = Callable[[torch.Tensor], "tuple[torch.Tensor, torch.Tensor, torch.Ten
 # default warm-up the test targets used depth <= 5, and the hardest case measured, the 100-D
 # condition-1000 Gaussian with a diagonal metric, mean 6.7 and max 8: 10 leaves a factor of 4 in
 # trajectory length over the longest seen before a draw is truncated (and then flagged).
-DEFAULT_MAX_DEPTH = 10
+DEFAULT_DEPTH_LIMIT = 10
 # energy error at which a trajectory counts as diverging (common practice)
 DEFAULT_MAX_ENERGY_ERROR = 1000.0
 
@@ -63,19 +63,19 @@ class NoUTurnTransition:
 
     Parameters
     ----------
-    max_depth : int
-        Maximum number of tree doublings (at most ``2**max_depth - 1`` leapfrog steps per draw).
+    depth_limit : int
+        Maximum number of tree doublings (at most ``2**depth_limit - 1`` leapfrog steps per draw).
     max_energy_error : float
         A point with ``H - H0`` above this is a divergence.
     """
 
-    def __init__(self, max_depth: int = DEFAULT_MAX_DEPTH,
+    def __init__(self, depth_limit: int = DEFAULT_DEPTH_LIMIT,
                  max_energy_error: float = DEFAULT_MAX_ENERGY_ERROR):
-        if isinstance(max_depth, bool) or not isinstance(max_depth, int) or not 1 <= max_depth <= 30:
-            raise ValueError(f"max_depth: expected an integer in [1, 30], got {max_depth!r}")
+        if isinstance(depth_limit, bool) or not isinstance(depth_limit, int) or not 1 <= depth_limit <= 30:
+            raise ValueError(f"depth_limit: expected an integer in [1, 30], got {depth_limit!r}")
         if not isinstance(max_energy_error, (int, float)) or not max_energy_error > 0:
             raise ValueError(f"max_energy_error: expected a positive number, got {max_energy_error!r}")
-        self.max_depth = max_depth
+        self.depth_limit = depth_limit
         self.max_energy_error = float(max_energy_error)
         self._index_cache: dict = {}
 
@@ -112,7 +112,7 @@ class NoUTurnTransition:
         momentum = metric.sample_momentum(n_chains, generator)
         velocity = velocity_of(momentum)
         energy0 = metric.kinetic_energy(momentum, velocity) - log_density
-        coins = torch.rand((2, self.max_depth, n_chains), generator=generator, dtype=dtype).to(device)
+        coins = torch.rand((2, self.depth_limit, n_chains), generator=generator, dtype=dtype).to(device)
         forward_rows, log_u_rows = (coins[0] < 0.5).unbind(0), coins[1].log().unbind(0)
         steps_fw = step_size.to(dtype)[:, None]
         steps_bw = -steps_fw
@@ -128,8 +128,8 @@ class NoUTurnTransition:
         diverging = torch.zeros(n_chains, dtype=torch.bool, device=device)
         active = None                                          # building chains (None: all, in order)
 
-        for j in range(self.max_depth):
-            size, last_depth = 1 << j, j == self.max_depth - 1
+        for j in range(self.depth_limit):
+            size, last_depth = 1 << j, j == self.depth_limit - 1
             if active is None:
                 fwd, ends_k, neg_rho_k, energy0_k = forward_rows[j], ends, neg_rho, energy0
                 eps = where(fwd[:, None], steps_fw, steps_bw)

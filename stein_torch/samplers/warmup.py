@@ -92,13 +92,13 @@ class Warmup:
     dim : int
     schedule : WarmupSchedule
     metric_kind : {"diag", "dense"}
-    target_accept : float
+    acceptance_goal : float
     """
 
     def __init__(self, step_size: np.ndarray, dim: int, schedule: WarmupSchedule, metric_kind: str,
-                 target_accept: float):
+                 acceptance_goal: float):
         self.schedule, self.metric_kind = schedule, metric_kind
-        self.step_size_rule = DualAveraging(step_size, target_accept)
+        self.step_size_rule = DualAveraging(step_size, acceptance_goal)
         self.moments = PooledMoments(dim, dense=metric_kind == "dense")
         self.iteration = 0
         self.last_shrinkage = float("nan")
